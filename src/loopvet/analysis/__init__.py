@@ -1,0 +1,1 @@
+"""Loop analyses; every function takes the leading sample axis."""

@@ -1,0 +1,73 @@
+"""The catalogue of findings: small frozen values with fixed message templates.
+
+A finding is something a reviewer should know about a loop that is not a requirement
+verdict: a doubtful-but-computed result, an approximation used, a cancelled mode.
+Renderers print ``message`` as it is; they never compose their own.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal
+
+Severity = Literal["info", "warning", "error"]
+
+
+@dataclass(frozen=True, kw_only=True, slots=True)
+class Finding:
+    kind: str
+    severity: Severity
+    message: str
+    key: str = ""
+
+    def to_json(self) -> dict[str, str]:
+        out = {"kind": self.kind, "severity": self.severity, "message": self.message}
+        if self.key:
+            out["key"] = self.key
+        return out
+
+
+def _c(z: complex) -> str:
+    return f"{z.real:.6g}" if z.imag == 0 else f"{z.real:.6g}{z.imag:+.6g}j"
+
+
+def near_cancellation(pole: complex, zero: complex, pole_block: str, zero_block: str,
+                      distance: float) -> Finding:
+    where = (f"the {pole_block}" if pole_block == zero_block
+             else f"the {pole_block} pole and {zero_block} zero")
+    risk = ("; the pole is unstable, so the loop is internally unstable whatever the gain"
+            if pole.real >= 0 else
+            "; that mode stays in the closed loop and shows in the load-disturbance response")
+    return Finding(kind="near_cancellation", severity="warning",
+                   message=f"pole {_c(pole)} nearly cancels zero {_c(zero)} in {where} "
+                           f"(distance {distance:.3g}){risk}")
+
+
+def pade_used(delay: float, order: int, chosen: bool) -> Finding:
+    how = "chosen by loopvet from the delay and the loop's fastest dynamics" if chosen \
+        else "set by delay_approximation"
+    return Finding(kind="pade_approximation", severity="info",
+                   message=f"dead time {delay:.6g} s: closed-loop poles use a Pade "
+                           f"approximation of order {order} ({how})")
+
+
+def unstable(count: int, pade_order: int | None) -> Finding:
+    note = f" (with the order-{pade_order} Pade approximation of the dead time)" \
+        if pade_order else ""
+    return Finding(kind="unstable", severity="error", key="stability",
+                   message=f"the closed loop is unstable at the nominal gain: {count} "
+                           f"closed-loop pole(s) on or right of the imaginary axis{note}")
+
+
+def not_evaluated(key: str) -> Finding:
+    return Finding(kind="not_evaluated", severity="info", key=key,
+                   message=f"requirement {key} is not evaluated by this version of loopvet")
+
+
+def metric_undefined(key: str, reason: str) -> Finding:
+    return Finding(kind="metric_undefined", severity="warning", key=key,
+                   message=f"{key} cannot be evaluated: {reason}")
+
+
+def ill_posed(message: str) -> Finding:
+    return Finding(kind="ill_posed", severity="error", message=message)

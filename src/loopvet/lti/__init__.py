@@ -1,0 +1,1 @@
+"""Linear time-invariant building blocks: batched polynomials, rationals, loop assembly."""

@@ -1,0 +1,196 @@
+"""Batched polynomial arithmetic.
+
+Coefficients are in ascending order (``c[..., k]`` multiplies ``s**k``) and every array has a
+leading sample axis: shape ``(samples, degree + 1)``. Functions broadcast a batch of one
+against a batch of many, so a fixed block can be combined with a swept one.
+Nothing here trims zero leading coefficients; :func:`effective_degree` reports them.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numpy.typing import NDArray
+
+FloatArray = NDArray[np.float64]
+ComplexArray = NDArray[np.complex128]
+
+
+def as_batch(c: object, dtype: type = np.float64) -> NDArray:
+    """Return ``c`` as a 2-D array (samples, n); a 1-D input becomes one sample."""
+    a: NDArray = np.asarray(c, dtype=dtype)
+    if a.ndim == 1:
+        a = a[None, :]
+    if a.ndim != 2 or a.shape[1] == 0:
+        raise ValueError(f"expected polynomial coefficients of shape (samples, n), got {a.shape}")
+    return a
+
+
+def constant(value: float | NDArray, samples: int = 1) -> FloatArray:
+    """The constant polynomial ``value`` (scalar or array of shape (samples,))."""
+    v = np.asarray(value, dtype=np.float64)
+    if v.ndim == 0:
+        v = np.broadcast_to(v, (samples,))
+    return v.reshape(-1, 1).copy()
+
+
+def variable(samples: int = 1) -> FloatArray:
+    """The polynomial ``s`` for a batch of ``samples``."""
+    out = np.zeros((samples, 2))
+    out[:, 1] = 1.0
+    return out
+
+
+def _pad(a: NDArray, n: int) -> NDArray:
+    if a.shape[1] == n:
+        return a
+    out = np.zeros((a.shape[0], n), dtype=a.dtype)
+    out[:, : a.shape[1]] = a
+    return out
+
+
+def add(a: NDArray, b: NDArray) -> NDArray:
+    """Sum of two batches (broadcast over samples)."""
+    n = max(a.shape[1], b.shape[1])
+    return _pad(a, n) + _pad(b, n)
+
+
+def sub(a: NDArray, b: NDArray) -> NDArray:
+    """Difference ``a - b`` of two batches."""
+    n = max(a.shape[1], b.shape[1])
+    return _pad(a, n) - _pad(b, n)
+
+
+def mul(a: NDArray, b: NDArray) -> NDArray:
+    """Product of two batches: a batched convolution.
+
+    Notes
+    -----
+    Exact up to floating-point rounding of the products (no FFT). Cost O(deg_a * deg_b) per
+    sample, vectorised over samples by looping over the shorter factor's coefficients.
+    """
+    if a.shape[1] < b.shape[1]:
+        a, b = b, a
+    samples = max(a.shape[0], b.shape[0])
+    dtype = np.result_type(a, b)
+    out = np.zeros((samples, a.shape[1] + b.shape[1] - 1), dtype=dtype)
+    for k in range(b.shape[1]):
+        out[:, k : k + a.shape[1]] += a * b[:, k : k + 1]
+    return out
+
+
+def power(a: NDArray, n: int) -> NDArray:
+    """``a**n`` for an integer ``n >= 0`` by repeated squaring."""
+    if n < 0:
+        raise ValueError("negative exponent")
+    result = np.ones((a.shape[0], 1), dtype=a.dtype)
+    base = a
+    while n:
+        if n & 1:
+            result = mul(result, base)
+        n >>= 1
+        if n:
+            base = mul(base, base)
+    return result
+
+
+def scale(a: NDArray, k: object) -> NDArray:
+    """Multiply each sample's polynomial by the scalar ``k`` (scalar or shape (samples,))."""
+    kk = np.asarray(k)
+    if kk.ndim == 0:
+        return a * kk
+    return a * kk.reshape(-1, 1)
+
+
+def from_roots(roots: NDArray, gain: object = 1.0) -> NDArray:
+    """Polynomial ``gain * prod_i (s - roots[:, i])`` for roots of shape (samples, m).
+
+    Complex roots must come in conjugate pairs for a real result; the imaginary part of the
+    product is discarded after a check that it is negligible (|imag| <= 1e-9 * scale).
+    """
+    r = np.asarray(roots, dtype=np.complex128)
+    if r.ndim == 1:
+        r = r[None, :]
+    samples = r.shape[0]
+    out = np.ones((samples, 1), dtype=np.complex128)
+    for i in range(r.shape[1]):
+        factor = np.stack([-r[:, i], np.ones(samples, dtype=np.complex128)], axis=1)
+        out = mul(out, factor)
+    g = np.asarray(gain, dtype=np.float64)
+    out = out * (g.reshape(-1, 1) if g.ndim else g)
+    imag = np.abs(out.imag).max(initial=0.0)
+    if imag > 1e-9 * max(1.0, float(np.abs(out.real).max(initial=0.0))):
+        raise ValueError("complex roots are not in conjugate pairs")
+    return np.ascontiguousarray(out.real)
+
+
+def evaluate(a: NDArray, x: NDArray) -> NDArray:
+    """Evaluate each sample's polynomial at points ``x``.
+
+    ``x`` has shape (points,) (shared) or (samples, points). Horner's scheme, ascending
+    coefficients. Returns shape (samples, points).
+    """
+    xx = np.asarray(x)
+    if xx.ndim == 1:
+        xx = xx[None, :]
+    result = np.zeros(np.broadcast_shapes((a.shape[0], 1), xx.shape), dtype=np.result_type(a, xx))
+    for k in range(a.shape[1] - 1, -1, -1):
+        result = result * xx + a[:, k : k + 1]
+    return result
+
+
+def derivative(a: NDArray) -> NDArray:
+    """Derivative d/ds of each sample's polynomial (degree drops by one, at least a constant)."""
+    if a.shape[1] == 1:
+        return np.zeros_like(a)
+    return a[:, 1:] * np.arange(1, a.shape[1], dtype=np.float64)
+
+
+def effective_degree(a: NDArray, rtol: float = 0.0) -> NDArray:
+    """Per-sample degree ignoring leading coefficients with ``|c| <= rtol * max|c|``.
+
+    With the default ``rtol = 0`` only exact zeros are ignored. The zero polynomial has
+    degree -1.
+    """
+    mag = np.abs(a)
+    thresh = rtol * mag.max(axis=1, keepdims=True)
+    nz = mag > thresh
+    idx = np.where(nz.any(axis=1), a.shape[1] - 1 - np.argmax(nz[:, ::-1], axis=1), -1)
+    return idx.astype(int)
+
+
+def trim_common(a: NDArray) -> NDArray:
+    """Drop high-order columns that are exactly zero in every sample (storage only)."""
+    deg = int(effective_degree(a).max(initial=0))
+    return a[:, : max(deg, 0) + 1]
+
+
+def roots(a: NDArray) -> ComplexArray:
+    """Roots of each sample's polynomial by batched companion-matrix eigenvalues.
+
+    Returns shape (samples, degree) where degree is the common effective degree of the batch.
+
+    Notes
+    -----
+    The companion matrix of the monic polynomial is built for all samples at once and
+    ``numpy.linalg.eigvals`` solves the stack (LAPACK ``geev`` with balancing). Accuracy is
+    that of a backward-stable eigenvalue solve: well-separated roots to about
+    ``1e-15 * ||c||/|c_n|`` relative; an m-fold root loses roughly a factor 1/m of the digits;
+    roots far from the origin relative to the others lose accuracy as the coefficients spread.
+    Samples whose leading coefficient is zero (lower degree than the batch) raise ValueError:
+    the caller must decide what a degree drop means.
+    """
+    deg = effective_degree(a)
+    n = int(deg.max(initial=-1))
+    if n < 0:
+        raise ValueError("the zero polynomial has no roots")
+    if np.any(deg != n):
+        raise ValueError("polynomial degree differs between samples (a leading coefficient "
+                         "is zero)")
+    if n == 0:
+        return np.zeros((a.shape[0], 0), dtype=np.complex128)
+    c = a[:, : n + 1]
+    monic = c[:, :n] / c[:, n : n + 1]
+    comp = np.zeros((a.shape[0], n, n))
+    comp[:, 1:, :-1] = np.eye(n - 1)
+    comp[:, :, -1] = -monic
+    return np.linalg.eigvals(comp).astype(np.complex128)

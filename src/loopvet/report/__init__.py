@@ -1,0 +1,1 @@
+"""Renderers: they format result values and never compute analyses."""
