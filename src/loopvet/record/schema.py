@@ -354,7 +354,12 @@ def fail_expression(w: Walk, node: yaml.Node, key: str, text: str,
     if one_line and style in (None, '"', "'"):
         col += exc.start + (1 if style in ('"', "'") else 0)
     part = text[exc.start:exc.end] if 0 <= exc.start < exc.end <= len(text) else ""
-    where = f" (at '{part}', character {exc.start + 1} of the expression)" if part else ""
+    if not part:
+        where = ""
+    elif f"'{part}'" in exc.message:
+        where = f" (character {exc.start + 1} of the expression)"
+    else:
+        where = f" (at '{part}', character {exc.start + 1} of the expression)"
     w.problems.append(RecordProblem(path=w.path, line=mark.line + 1, column=col, key=key,
                                     message=f"{exc.message}{where}"))
     return BAD

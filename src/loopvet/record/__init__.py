@@ -1,0 +1,1 @@
+"""Loop records: YAML -> validated, frozen :class:`~loopvet.record.model.Record`."""
