@@ -47,6 +47,8 @@ def build_parser() -> argparse.ArgumentParser:
                        help="output folder for results.json (default reports/latest/)")
     check.add_argument("--format", choices=("text", "json"), default="text",
                        help="what to print on stdout: a line per record, or the results JSON")
+    show = sub.add_parser("show", help="print a readable analysis of one record")
+    show.add_argument("record", metavar="RECORD", help="one record file")
     sub.add_parser("schema", help="print the JSON Schema of the record format")
     return parser
 
@@ -62,6 +64,13 @@ def main(argv: Sequence[str] | None = None) -> int:
 
         sys.stdout.write(json.dumps(json_schema(), indent=2) + "\n")
         return 0
+    if args.command == "show":
+        from .report.show import render as render_show
+        from .run import check_file
+
+        result = check_file(args.record)
+        sys.stdout.write(render_show(result))
+        return 3 if result.status == "invalid" else 0
     from .run import Settings
 
     return _check(Settings(paths=tuple(args.paths), out=args.out, format=args.format))

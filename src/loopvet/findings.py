@@ -71,3 +71,26 @@ def metric_undefined(key: str, reason: str) -> Finding:
 
 def ill_posed(message: str) -> Finding:
     return Finding(kind="ill_posed", severity="error", message=message)
+
+
+def pade_disagrees(order: int, exact_stable: bool) -> Finding:
+    exact = "stable" if exact_stable else "unstable"
+    approx = "unstable" if exact_stable else "stable"
+    return Finding(kind="pade_disagrees", severity="warning", key="stability",
+                   message=f"the exact dead-time analysis finds the loop {exact} but the "
+                           f"order-{order} Pade model is {approx}; pole-based metrics are "
+                           "doubtful: raise delay_approximation.pade")
+
+
+def fixed_axis_pole() -> Finding:
+    return Finding(kind="fixed_axis_pole", severity="error", key="stability",
+                   message="a pole on the imaginary axis is cancelled by a zero of the loop: "
+                           "it stays a closed-loop pole for every gain, so no gain stabilises "
+                           "the loop")
+
+
+def gain_search_bound(bound: float) -> Finding:
+    return Finding(kind="gain_search_bound", severity="info",
+                   message=f"dead time: crossings were searched for |K| up to {bound:.6g}, "
+                           "which bounds every reported interval; beyond it only "
+                           "destabilising crossings occur")

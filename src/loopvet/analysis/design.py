@@ -1,34 +1,43 @@
-"""One record -> one :class:`DesignResult`: assemble the nominal loop, analyse, judge."""
+"""One record -> one :class:`DesignResult`: assemble the nominal loop, analyse, judge.
+
+Stages: parameters -> loop -> exact gain intervals (stability, gain margins) -> closed-loop
+poles (Pade for dead time) -> pole-region intervals -> locus facts and branches -> verdicts.
+"""
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from scipy.optimize import minimize_scalar
 
 from .. import findings as fd
 from ..lti import poly
 from ..lti.loop import Loop, assemble, near_cancellations
+from ..lti.rational import pade
 from ..metrics import POLE_KEYS
 from ..record import params
 from ..record.errors import RecordInvalid
-from ..record.model import Record
+from ..record.model import Record, Requirement
 from ..results import DesignResult
 from ..verdict import Entry, judge, judge_stability, not_evaluated
-from .poles import closed_loop_poles, is_stable, pole_metrics
+from .branches import trace
+from .delay import delay_gain_intervals
+from .gain import GainIntervals, gain_margins, stable_gain_intervals
+from .locus import locus_facts
+from .poles import closed_loop_poles, is_stable, pade_order, pole_metrics
+from .regions import holds, metric_at_gains, region_intervals
+
+#: gains sampled over gain.range when the worst pole metric is sought (plus refinement)
+RANGE_SAMPLES = 201
 
 
 def pairs(values: np.ndarray) -> list[list[float]]:
     """Complex values as [re, im] pairs, rightmost (slowest) first, then by imaginary part."""
     vals = sorted((complex(v) for v in np.ravel(values)), key=lambda c: (-c.real, c.imag))
     return [[float(c.real), float(c.imag)] for c in vals]
-
-
-def _roots_of(a: np.ndarray) -> np.ndarray:
-    deg = int(poly.effective_degree(a[:1])[0])
-    if deg <= 0:
-        return np.zeros(0, dtype=complex)
-    return poly.roots(a[:1, : deg + 1])[0]
 
 
 def digital_not_yet(record: Record) -> RecordInvalid:
@@ -38,6 +47,35 @@ def digital_not_yet(record: Record) -> RecordInvalid:
         "sampling to check the continuous design")])
 
 
+def interval_list(intervals: Any) -> list[list[float]]:
+    return [[float(lo), float(hi)] for lo, hi in intervals]
+
+
+@dataclass(frozen=True, slots=True)
+class PoleModel:
+    """The polynomials whose roots are the closed-loop poles: D_eff + K N_eff (1-D)."""
+
+    n: np.ndarray
+    d: np.ndarray
+    order: int | None   # Pade order, None without dead time
+
+
+def pole_model(loop: Loop, record: Record) -> PoleModel:
+    n, d = loop.n[0], loop.d[0]
+    if not loop.has_delay:
+        return PoleModel(n=n, d=d, order=None)
+    order = pade_order(loop, record.pade_order)
+    pn, pd = pade(loop.delay[:1], order)
+    return PoleModel(n=poly.mul(loop.n[:1], pn)[0], d=poly.mul(loop.d[:1], pd)[0], order=order)
+
+
+def gain_analysis(loop: Loop, record: Record) -> GainIntervals:
+    interest = [record.gain.nominal, *(record.gain.range or ())]
+    if loop.has_delay:
+        return delay_gain_intervals(loop.n, loop.d, loop.delay, np.array([interest]))[0]
+    return stable_gain_intervals(loop.n, loop.d)[0]
+
+
 def check_record(record: Record) -> DesignResult:
     """Analyse the nominal loop of a valid record. Raises RecordInvalid if it cannot be
     assembled (for example an improper block or a derived parameter that divides by 0)."""
@@ -45,9 +83,12 @@ def check_record(record: Record) -> DesignResult:
         raise digital_not_yet(record)
     values = params.values(record, 1)
     loop = assemble(record, values, 1)
+    k = record.gain.nominal
     found: list[fd.Finding] = [fd.near_cancellation(c.pole, c.zero, c.pole_block,
                                                     c.zero_block, c.distance)
                                for c in near_cancellations(loop)]
+    gi = gain_analysis(loop, record)
+    stable = gi.interval_containing(k) is not None
     try:
         pole_set = closed_loop_poles(loop, order=record.pade_order)
     except ValueError:
@@ -56,47 +97,149 @@ def check_record(record: Record) -> DesignResult:
             "vanishes as s -> infinity, so D + K N loses its leading term; change the gain "
             "or make a block strictly proper")]) from None
     poles = pole_set.poles
-    stable = bool(is_stable(poles)[0])
     if pole_set.pade_order:
         found.append(fd.pade_used(float(loop.delay[0]), pole_set.pade_order,
                                   chosen=record.pade_order is None))
+        if bool(is_stable(poles)[0]) != stable:
+            found.append(fd.pade_disagrees(pole_set.pade_order, stable))
+    if gi.fixed_axis_pole:
+        found.append(fd.fixed_axis_pole())
     if not stable:
         unstable_count = int(np.sum(poles[0].real >= -1e-10 * np.maximum(1, abs(poles[0]))))
-        found.append(fd.unstable(unstable_count, pole_set.pade_order))
-    metrics: dict[str, Any] = {k: float(v[0]) for k, v in pole_metrics(poles).items()}
-    entries = _judge(record, stable, metrics, found)
+        found.append(fd.unstable(max(unstable_count, 1), pole_set.pade_order))
+    if loop.has_delay and math.isfinite(gi.search_bound):
+        found.append(fd.gain_search_bound(gi.search_bound))
+    gm, grm = gain_margins(gi, k)
+    metrics: dict[str, Any] = {"gain_margin_db": gm, "gain_reduction_margin_db": grm}
+    metrics |= {key: float(v[0]) for key, v in pole_metrics(poles).items()}
+    model = pole_model(loop, record)
+    regions = {r.key: region_intervals(r.key, r.min, r.max, model.n, model.d)[0]
+               for r in record.requirements if r.key in POLE_KEYS}
+    entries = _judge(record, gi, model, regions, stable, metrics, found)
     failed = any(e.status == "fail" for e in entries)
+    negative = bool(record.gain.range and record.gain.range[0] < 0) or k < 0
+    gain_block: dict[str, Any] = {
+        "nominal": k,
+        "range": list(record.gain.range) if record.gain.range else None,
+        "stable_intervals": interval_list(gi.stable),
+        "crossings": [{"gain": c.gain, "frequency": c.frequency} for c in gi.crossings],
+        "region_intervals": {key: interval_list(v) for key, v in regions.items()},
+    }
+    if loop.has_delay:
+        gain_block["search_bound"] = gi.search_bound
+    locus = locus_facts(loop.n[0], loop.d[0], include_negative=negative)
+    locus["branches"] = _branches(loop, gi, locus, negative)
     return DesignResult(
         name=record.name, revision=record.revision, path=record.path,
-        status="fail" if failed else "pass",
-        title=record.title,
-        gain={"nominal": record.gain.nominal,
-              "range": list(record.gain.range) if record.gain.range else None},
-        locus=_locus(loop),
-        poles=pairs(poles[0]),
+        status="fail" if failed else "pass", title=record.title,
+        gain=gain_block, locus=locus, poles=pairs(poles[0]),
         metrics=metrics, requirements=tuple(entries), findings=tuple(found),
-        extra={"delay": float(loop.delay[0]),
-               "pade_order": pole_set.pade_order},
+        extra={"delay": float(loop.delay[0]), "pade_order": pole_set.pade_order},
     )
 
 
-def _locus(loop: Loop) -> dict[str, Any]:
-    return {"open_loop_poles": pairs(_roots_of(loop.d)),
-            "open_loop_zeros": pairs(_roots_of(loop.n))}
+def _branches(loop: Loop, gi: GainIntervals, locus: dict[str, Any],
+              negative: bool) -> dict[str, Any]:
+    """Traced branches for plots: gains and per-branch re/im lists (5 significant digits),
+    for K >= 0 and, when the gain range reaches below 0, for K <= 0."""
+    out: dict[str, Any] = {}
+    # the locus is that of the delay-free part: dead-time crossings do not lie on it
+    crossing = [] if loop.has_delay else [c.gain for c in gi.crossings
+                                          if math.isfinite(c.frequency)]
+    extra_pos = [g for g in crossing if g > 0] + [b["gain"] for b in locus.get("breakaway", [])]
+    sides = [("positive", False, extra_pos)]
+    if negative:
+        extra_neg = [g for g in crossing if g < 0] + [
+            b["gain"] for b in locus.get("negative_gain", {}).get("breakaway", [])]
+        sides.append(("negative", True, extra_neg))
+    for label, neg, extra in sides:
+        br = trace(loop.n[0], loop.d[0], negative=neg, extra_gains=extra, max_points=300)
+        out[label] = {
+            "gains": [float(f"{g:.5g}") for g in br.gains],
+            "re": [[float(f"{z:.5g}") for z in col] for col in br.roots.T.real],
+            "im": [[float(f"{z:.5g}") for z in col] for col in br.roots.T.imag],
+        }
+    return out
 
 
-def _judge(record: Record, stable: bool, metrics: dict[str, Any],
-           found: list[fd.Finding]) -> list[Entry]:
+def _worst_pole_metric(req: Requirement, model: PoleModel, lo: float, hi: float,
+                       holding: list[tuple[float, float]]) -> tuple[float, float]:
+    """(worst value, K) of a pole metric over [lo, hi]: grid, region gaps, refinement."""
+    ks = list(np.linspace(lo, hi, RANGE_SAMPLES))
+    # points where the requirement fails, from the exact region intervals
+    edges = sorted({lo, hi, *(x for iv in holding for x in iv if lo < x < hi)})
+    ks += [0.5 * (a + b) for a, b in zip(edges[:-1], edges[1:], strict=True)]
+    ks_arr = np.asarray(ks)
+    vals = metric_at_gains(req.key, model.n, model.d, ks_arr)
+    sign = -1.0 if req.min is not None else 1.0    # minimise sign*value... worst = min or max
+    worst_i = int(np.argmin(vals) if req.min is not None else np.argmax(vals))
+    k0 = float(ks_arr[worst_i])
+    step = (hi - lo) / (RANGE_SAMPLES - 1) if hi > lo else 0.0
+    if step > 0:
+        a, b = max(lo, k0 - step), min(hi, k0 + step)
+        res = minimize_scalar(
+            lambda kk: -sign * float(metric_at_gains(req.key, model.n, model.d,
+                                                     np.array([kk]))[0]),
+            bounds=(a, b), method="bounded", options={"xatol": 1e-10 * max(1.0, abs(k0))})
+        v = float(metric_at_gains(req.key, model.n, model.d, np.array([res.x]))[0])
+        if (req.min is not None and v < vals[worst_i]) or (req.min is None and
+                                                             v > vals[worst_i]):
+            return v, float(res.x)
+    return float(vals[worst_i]), k0
+
+
+def _judge(record: Record, gi: GainIntervals, model: PoleModel,
+           regions: dict[str, list[tuple[float, float]]], stable: bool,
+           metrics: dict[str, Any], found: list[fd.Finding]) -> list[Entry]:
     entries: list[Entry] = []
+    rng = record.gain.range
     for req in record.requirements:
         if req.key == "stability":
             entries.append(judge_stability(req, stable))
-        elif req.key in POLE_KEYS:
+        elif req.key in ("gain_margin_db", "gain_reduction_margin_db") or req.key in POLE_KEYS:
             entries.append(judge(req, metrics[req.key]))
         else:
             entries.append(not_evaluated(req))
             found.append(fd.not_evaluated(req.key))
-        if req.over_gain:
+        if not req.over_gain or rng is None:
+            continue
+        lo, hi = rng
+        inside = next((iv for iv in gi.stable if iv[0] < lo and hi < iv[1]), None)
+        first_bad = _first_unstable_gain(gi, lo, hi, record.gain.nominal)
+        if req.key == "stability":
+            entries.append(judge_stability(req, inside is not None, scope="gain",
+                                           where=None if inside else {"gain": first_bad}))
+        elif req.key in ("gain_margin_db", "gain_reduction_margin_db"):
+            if inside is None:
+                entries.append(judge(req, None, scope="gain", where={"gain": first_bad},
+                                     note="the loop is unstable inside gain.range"))
+                continue
+            side = 0 if req.key == "gain_margin_db" else 1
+            cands = [(gain_margins(gi, kk)[side], kk) for kk in (lo, hi) if kk != 0]
+            value, kk = min((c for c in cands if c[0] is not None), default=(None, lo))
+            entries.append(judge(req, value, scope="gain", where={"gain": kk}))
+        elif req.key in POLE_KEYS:
+            value, kk = _worst_pole_metric(req, model, lo, hi, regions[req.key])
+            within = any(a <= lo and hi <= b for a, b in regions[req.key])
+            entry = judge(req, value, scope="gain", where={"gain": kk})
+            if within != (entry.status == "pass"):
+                # the exact region intervals decide; the sampled worst value is reported
+                entry = Entry(key=entry.key, status="pass" if within else "fail",
+                              value=entry.value, bound=entry.bound, headroom=entry.headroom,
+                              scope="gain", where=entry.where,
+                              note="decided by the exact region intervals")
+            entries.append(entry)
+        else:
             entries.append(not_evaluated(req, scope="gain",
                                          note="worst case over gain.range not evaluated yet"))
     return entries
+
+
+def _first_unstable_gain(gi: GainIntervals, lo: float, hi: float, k: float) -> float | None:
+    """The unstable gain in [lo, hi] nearest to the nominal K (a crossing, or an end)."""
+    cands = [c.gain for c in gi.crossings if lo <= c.gain <= hi]
+    cands += [x for x in (lo, hi) if gi.interval_containing(x) is None]
+    return min(cands, key=lambda g: abs(g - k)) if cands else None
+
+
+__all__ = ["check_record", "pairs", "holds"]

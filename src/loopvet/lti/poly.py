@@ -194,3 +194,32 @@ def roots(a: NDArray) -> ComplexArray:
     comp[:, 1:, :-1] = np.eye(n - 1)
     comp[:, :, -1] = -monic
     return np.linalg.eigvals(comp).astype(np.complex128)
+
+
+def roots_ragged(a: NDArray) -> ComplexArray:
+    """Roots of a batch whose samples may differ in effective degree.
+
+    Returns shape (samples, max_degree), padded with NaN where a sample has fewer roots.
+    Samples are grouped by degree and each group is solved by :func:`roots` in one call,
+    so the Python loop runs once per distinct degree, not once per sample.
+    """
+    deg = effective_degree(a)
+    top = int(max(deg.max(initial=0), 0))
+    out = np.full((a.shape[0], top), np.nan + 0j, dtype=np.complex128)
+    for g in np.unique(deg):
+        if g <= 0:
+            continue
+        idx = np.nonzero(deg == g)[0]
+        out[idx, :g] = roots(a[idx, : g + 1])
+    return out
+
+
+def on_imaginary_axis(c: NDArray) -> tuple[NDArray, NDArray]:
+    """Real and imaginary parts of ``c(jw)`` as real polynomials in w (ascending).
+
+    ``c(jw) = R(w) + j I(w)`` with ``R_k = c_k Re(j^k)`` and ``I_k = c_k Im(j^k)``.
+    """
+    k = np.arange(c.shape[1]) % 4
+    re = np.array([1.0, 0.0, -1.0, 0.0])[k]
+    im = np.array([0.0, 1.0, 0.0, -1.0])[k]
+    return c * re, c * im
