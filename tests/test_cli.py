@@ -100,9 +100,10 @@ def test_show_reads_well(tmp_path):
     (tmp_path / "a.yaml").write_text(GOOD)
     r = run_cli("show", str(tmp_path / "a.yaml"))
     assert r.returncode == 0, r.stderr
-    for fragment in ("stable gain intervals (open):", "(0, 6)", "crossing gain K",
+    # the record has controller gain 2: K/(s(s+1)(s+2)) limits halve, (0, 6) -> (0, 3)
+    for fragment in ("stable gain intervals (open):", "(0, 3)", "crossing gain K",
                      "1.414213562", "asymptotes (K > 0): centroid -1, angles 60 deg, 180 deg, "
-                     "300 deg", "break point -0.42265 at K = 0.3849", "closed-loop poles"):
+                     "300 deg", "break point -0.42265 at K = 0.19245", "closed-loop poles"):
         assert fragment in r.stdout, (fragment, r.stdout)
     (tmp_path / "b.yaml").write_text(BROKEN)
     r = run_cli("show", str(tmp_path / "b.yaml"))
