@@ -74,3 +74,42 @@ def test_demo_records_carry_every_issue3_block():
         pole_reqs = {r.key for r in res.requirements
                      if r.key in ("damping_ratio", "decay_rate", "natural_frequency")}
         assert pole_reqs == set(res.gain["region_intervals"])
+
+
+def test_demo_fleet_is_fully_evaluated():
+    """Every requirement of every demo record is judged (none left 'not_evaluated') and
+    every metric of the requirement table is in `metrics` (None only where it cannot
+    exist, e.g. time metrics of an unstable loop)."""
+    from loopvet.metrics import METRICS
+
+    for path in sorted((ROOT / "designs").rglob("*.yaml")):
+        res = check_file(str(path))
+        assert all(e.status in ("pass", "fail") for e in res.requirements), path
+        assert set(METRICS) <= set(res.metrics), path
+        stable = next(e for e in res.requirements if e.key == "stability"
+                      and e.scope == "nominal").status == "pass"
+        if stable:
+            missing = [k for k, v in res.metrics.items() if v is None]
+            assert not missing, (path, missing)
+
+
+def test_phase_margin_worst_over_gain_range():
+    """Worst phase margin over K in [0.5, 2] for K/(s(s+1)(s+2)) against a dense scan of the
+    crossover phase (numpy, 4001 gains): the margin falls as K rises."""
+    res = check_record(load_text("""\
+        plant: {transfer: "1/(s*(s+1)*(s+2))"}
+        controller: {transfer: "1"}
+        gain: {nominal: 1, range: [0.5, 2]}
+        requirements:
+          phase_margin_deg: {min: 10, over_gain: true}
+        """))
+    e = _entry(res, "phase_margin_deg", "gain")
+    ks = np.linspace(0.5, 2, 4001)
+    ref = []
+    for kk in ks:
+        w = [r.real for r in np.roots([1, 0, 5, 0, 4, 0, -kk * kk]) if abs(r.imag) < 1e-9
+             and r.real > 0][0]
+        phase = -90 - math.degrees(math.atan(w)) - math.degrees(math.atan(w / 2))
+        ref.append(180 + phase)
+    assert e.value == pytest.approx(min(ref), rel=1e-6)
+    assert e.where["gain"] == pytest.approx(2.0, rel=1e-6)

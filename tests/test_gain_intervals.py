@@ -146,6 +146,8 @@ def test_inside_stable_outside_not(poles, zeros, k):
             if not math.isfinite(kk):
                 continue
             eps = 1e-4 * max(1.0, abs(kk))
+            if math.isfinite(hi - lo):
+                eps = min(eps, 0.01 * (hi - lo))   # stay inside narrow intervals
             inside = kk + eps if kk == lo else kk - eps
             outside = kk - eps if kk == lo else kk + eps
             if any(a < outside < b for a, b in res.stable):

@@ -7,6 +7,7 @@ Renderers print ``message`` as it is; they never compose their own.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Literal
 
@@ -59,11 +60,6 @@ def unstable(count: int, pade_order: int | None) -> Finding:
                            f"closed-loop pole(s) on or right of the imaginary axis{note}")
 
 
-def not_evaluated(key: str) -> Finding:
-    return Finding(kind="not_evaluated", severity="info", key=key,
-                   message=f"requirement {key} is not evaluated by this version of loopvet")
-
-
 def metric_undefined(key: str, reason: str) -> Finding:
     return Finding(kind="metric_undefined", severity="warning", key=key,
                    message=f"{key} cannot be evaluated: {reason}")
@@ -94,3 +90,18 @@ def gain_search_bound(bound: float) -> Finding:
                    message=f"dead time: crossings were searched for |K| up to {bound:.6g}, "
                            "which bounds every reported interval; beyond it only "
                            "destabilising crossings occur")
+
+
+def response_truncated() -> Finding:
+    return Finding(kind="response_truncated", severity="warning",
+                   message="the step-response simulation reached its step budget before the "
+                           "response settled; time metrics may be less accurate than 0.2 %")
+
+
+def classic_gain_margin_differs(classic_db: float, exact_db: float) -> Finding:
+    c = "inf" if math.isinf(classic_db) else f"{classic_db:.4g} dB"
+    return Finding(kind="classic_gain_margin_differs", severity="info", key="gain_margin_db",
+                   message=f"the classic phase-crossover gain margin ({c}) differs from the "
+                           f"stability-interval margin ({exact_db:.4g} dB): with several "
+                           "phase crossovers, open-loop unstable poles or a conditionally "
+                           "stable loop, only the interval says how far K may rise")

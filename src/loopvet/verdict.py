@@ -53,9 +53,3 @@ def judge_stability(req: Requirement, stable: bool, *, scope: str = "nominal",
     return Entry(key=req.key, status="pass" if stable else "fail", value=stable,
                  bound={"over_gain": req.over_gain}, headroom=None, scope=scope,  # type: ignore[arg-type]
                  where=where, note=note)
-
-
-def not_evaluated(req: Requirement, scope: str = "nominal", note: str = "") -> Entry:
-    bound = {"over_gain": req.over_gain} if req.key == "stability" else req.bound
-    return Entry(key=req.key, status="not_evaluated", value=None, bound=bound, headroom=None,
-                 scope=scope, note=note)  # type: ignore[arg-type]

@@ -15,23 +15,27 @@ from scipy.optimize import minimize_scalar
 
 from .. import findings as fd
 from ..lti import poly
-from ..lti.loop import Loop, assemble, near_cancellations
+from ..lti.loop import Loop, assemble, near_cancellations, with_gains
 from ..lti.rational import pade
-from ..metrics import POLE_KEYS
+from ..metrics import METRICS, POLE_KEYS
 from ..record import params
 from ..record.errors import RecordInvalid
 from ..record.model import Record, Requirement
 from ..results import DesignResult
-from ..verdict import Entry, judge, judge_stability, not_evaluated
+from ..verdict import Entry, headroom, judge, judge_stability
 from .branches import trace
 from .delay import delay_gain_intervals
+from .evaluate import FREQUENCY_KEYS, TIME_KEYS, Evaluation, evaluate
+from .frequency import phase_crossovers
 from .gain import GainIntervals, gain_margins, stable_gain_intervals
 from .locus import locus_facts
-from .poles import closed_loop_poles, is_stable, pade_order, pole_metrics
+from .poles import is_stable, pade_order
 from .regions import holds, metric_at_gains, region_intervals
 
 #: gains sampled over gain.range when the worst pole metric is sought (plus refinement)
 RANGE_SAMPLES = 201
+#: gains evaluated over gain.range for the worst frequency and time metrics
+GAIN_SAMPLES = 21
 
 
 def pairs(values: np.ndarray) -> list[list[float]]:
@@ -89,33 +93,36 @@ def check_record(record: Record) -> DesignResult:
                                for c in near_cancellations(loop)]
     gi = gain_analysis(loop, record)
     stable = gi.interval_containing(k) is not None
+    band = _band(record)
     try:
-        pole_set = closed_loop_poles(loop, order=record.pade_order)
+        ev = evaluate(loop, pade=record.pade_order, band=band, intervals=[gi])
     except ValueError:
         raise RecordInvalid([params.problem(
             record, "gain", "the loop is not well posed at the nominal gain: 1 + L(s) "
             "vanishes as s -> infinity, so D + K N loses its leading term; change the gain "
             "or make a block strictly proper")]) from None
-    poles = pole_set.poles
-    if pole_set.pade_order:
-        found.append(fd.pade_used(float(loop.delay[0]), pole_set.pade_order,
+    poles = ev.poles
+    if ev.pade_order:
+        found.append(fd.pade_used(float(loop.delay[0]), ev.pade_order,
                                   chosen=record.pade_order is None))
         if bool(is_stable(poles)[0]) != stable:
-            found.append(fd.pade_disagrees(pole_set.pade_order, stable))
+            found.append(fd.pade_disagrees(ev.pade_order, stable))
     if gi.fixed_axis_pole:
         found.append(fd.fixed_axis_pole())
     if not stable:
         unstable_count = int(np.sum(poles[0].real >= -1e-10 * np.maximum(1, abs(poles[0]))))
-        found.append(fd.unstable(max(unstable_count, 1), pole_set.pade_order))
+        found.append(fd.unstable(max(unstable_count, 1), ev.pade_order))
     if loop.has_delay and math.isfinite(gi.search_bound):
         found.append(fd.gain_search_bound(gi.search_bound))
-    gm, grm = gain_margins(gi, k)
-    metrics: dict[str, Any] = {"gain_margin_db": gm, "gain_reduction_margin_db": grm}
-    metrics |= {key: float(v[0]) for key, v in pole_metrics(poles).items()}
+    metrics: dict[str, Any] = {key: _value(ev.metrics[key][0]) for key in METRICS}
+    if ev.reference is not None and bool(ev.reference.truncated[0]):
+        found.append(fd.response_truncated())
+    pc = phase_crossovers(loop, 0, [c.frequency for c in gi.crossings])
+    _compare_gain_margins(pc, metrics, stable, found)
     model = pole_model(loop, record)
     regions = {r.key: region_intervals(r.key, r.min, r.max, model.n, model.d)[0]
                for r in record.requirements if r.key in POLE_KEYS}
-    entries = _judge(record, gi, model, regions, stable, metrics, found)
+    entries = _judge(record, loop, gi, model, regions, stable, metrics, band)
     failed = any(e.status == "fail" for e in entries)
     negative = bool(record.gain.range and record.gain.range[0] < 0) or k < 0
     gain_block: dict[str, Any] = {
@@ -127,14 +134,18 @@ def check_record(record: Record) -> DesignResult:
     }
     if loop.has_delay:
         gain_block["search_bound"] = gi.search_bound
+    frequency = {"gain_crossovers": [{"frequency": c.frequency, "lag_deg": c.lag_deg}
+                                     for c in ev.crossovers[0]],
+                 "phase_crossovers": pc}
     locus = locus_facts(loop.n[0], loop.d[0], include_negative=negative)
     locus["branches"] = _branches(loop, gi, locus, negative)
     return DesignResult(
         name=record.name, revision=record.revision, path=record.path,
         status="fail" if failed else "pass", title=record.title,
-        gain=gain_block, locus=locus, poles=pairs(poles[0]),
+        gain=gain_block, locus=locus, poles=pairs(poles[0][np.isfinite(poles[0])]),
         metrics=metrics, requirements=tuple(entries), findings=tuple(found),
-        extra={"delay": float(loop.delay[0]), "pade_order": pole_set.pade_order},
+        extra={"delay": float(loop.delay[0]), "pade_order": ev.pade_order,
+               "frequency": frequency, "responses": _responses_json(ev)},
     )
 
 
@@ -188,19 +199,18 @@ def _worst_pole_metric(req: Requirement, model: PoleModel, lo: float, hi: float,
     return float(vals[worst_i]), k0
 
 
-def _judge(record: Record, gi: GainIntervals, model: PoleModel,
+def _judge(record: Record, loop: Loop, gi: GainIntervals, model: PoleModel,
            regions: dict[str, list[tuple[float, float]]], stable: bool,
-           metrics: dict[str, Any], found: list[fd.Finding]) -> list[Entry]:
+           metrics: dict[str, Any], band: float) -> list[Entry]:
     entries: list[Entry] = []
     rng = record.gain.range
+    over = [r for r in record.requirements if r.over_gain and r.key in FREQUENCY_KEYS + TIME_KEYS]
+    worst = _worst_over_gain(loop, record, gi, over, band) if over and rng else {}
     for req in record.requirements:
         if req.key == "stability":
             entries.append(judge_stability(req, stable))
-        elif req.key in ("gain_margin_db", "gain_reduction_margin_db") or req.key in POLE_KEYS:
-            entries.append(judge(req, metrics[req.key]))
         else:
-            entries.append(not_evaluated(req))
-            found.append(fd.not_evaluated(req.key))
+            entries.append(judge(req, metrics[req.key]))
         if not req.over_gain or rng is None:
             continue
         lo, hi = rng
@@ -209,11 +219,10 @@ def _judge(record: Record, gi: GainIntervals, model: PoleModel,
         if req.key == "stability":
             entries.append(judge_stability(req, inside is not None, scope="gain",
                                            where=None if inside else {"gain": first_bad}))
+        elif inside is None:
+            entries.append(judge(req, None, scope="gain", where={"gain": first_bad},
+                                 note="the loop is unstable inside gain.range"))
         elif req.key in ("gain_margin_db", "gain_reduction_margin_db"):
-            if inside is None:
-                entries.append(judge(req, None, scope="gain", where={"gain": first_bad},
-                                     note="the loop is unstable inside gain.range"))
-                continue
             side = 0 if req.key == "gain_margin_db" else 1
             cands = [(gain_margins(gi, kk)[side], kk) for kk in (lo, hi) if kk != 0]
             value, kk = min((c for c in cands if c[0] is not None), default=(None, lo))
@@ -230,9 +239,89 @@ def _judge(record: Record, gi: GainIntervals, model: PoleModel,
                               note="decided by the exact region intervals")
             entries.append(entry)
         else:
-            entries.append(not_evaluated(req, scope="gain",
-                                         note="worst case over gain.range not evaluated yet"))
+            value, kk = worst[req.key]
+            entries.append(judge(req, value, scope="gain", where={"gain": kk}))
     return entries
+
+
+def _band(record: Record) -> float:
+    req = record.requirement("settling_time_s")
+    return req.band if req is not None and req.band is not None else 0.02
+
+
+def _value(x: float) -> float | None:
+    return None if not np.isfinite(x) and not np.isinf(x) else float(x)
+
+
+def _worst_over_gain(loop: Loop, record: Record, gi: GainIntervals, reqs: list[Requirement],
+                     band: float) -> dict[str, tuple[float | None, float]]:
+    """Worst value and its K over gain.range for frequency and time requirements.
+
+    The metrics are evaluated on GAIN_SAMPLES gains spread over the range (ends and nominal
+    included) in one batched call; for frequency metrics the worst sample is then refined by
+    a bounded scalar search between its neighbours. Time metrics keep the sampled worst
+    (a simulation per refinement step would dominate the run time).
+    """
+    assert record.gain.range is not None
+    lo, hi = record.gain.range
+    ks = np.unique(np.concatenate([np.linspace(lo, hi, GAIN_SAMPLES), [record.gain.nominal]]))
+    need_time = any(r.key in TIME_KEYS for r in reqs)
+    ev = evaluate(with_gains(loop, ks), pade=record.pade_order, band=band,
+                  intervals=[gi] * ks.size, time=need_time)
+    out: dict[str, tuple[float | None, float]] = {}
+    for req in reqs:
+        vals = ev.metrics[req.key]
+        score = np.array([headroom(v, req) if np.isfinite(v) or np.isinf(v) else -np.inf
+                          for v in vals])
+        i = int(np.argmin(score))
+        value, k_worst = _value(vals[i]), float(ks[i])
+        if req.key in FREQUENCY_KEYS and value is not None and ks.size > 1:
+            a, b = float(ks[max(i - 1, 0)]), float(ks[min(i + 1, ks.size - 1)])
+
+            def f(kk: float, key: str = req.key, rq: Requirement = req) -> float:
+                e = evaluate(with_gains(loop, np.array([kk])), pade=record.pade_order,
+                             intervals=[gi], time=False)
+                v = float(e.metrics[key][0])
+                return headroom(v, rq) if np.isfinite(v) else -1e300
+
+            res = minimize_scalar(f, bounds=(a, b), method="bounded",
+                                  options={"xatol": 1e-8 * max(1.0, abs(k_worst)),
+                                           "maxiter": 40})
+            if res.fun < score[i]:
+                e = evaluate(with_gains(loop, np.array([res.x])), pade=record.pade_order,
+                             intervals=[gi], time=False)
+                value, k_worst = _value(e.metrics[req.key][0]), float(res.x)
+        out[req.key] = (value, k_worst)
+    return out
+
+
+def _compare_gain_margins(pc: list[dict[str, float]], metrics: dict[str, Any], stable: bool,
+                          found: list[fd.Finding]) -> None:
+    """Report when the classic phase-crossover gain margin differs from the interval one."""
+    if not stable or not pc:
+        return
+    above = [c["gain_factor_db"] for c in pc if c["gain_factor_db"] > 0]
+    classic = min(above) if above else math.inf
+    exact = metrics.get("gain_margin_db")
+    if exact is None:
+        return
+    if not (math.isinf(classic) and math.isinf(exact)) and not math.isclose(
+            classic, exact, rel_tol=1e-6, abs_tol=1e-9):
+        found.append(fd.classic_gain_margin_differs(classic, exact))
+
+
+def _responses_json(ev: Evaluation, points: int = 400) -> dict[str, Any]:
+    """Sampled step and load responses (about ``points`` points each) for the report."""
+    out: dict[str, Any] = {}
+    for key, r in (("reference", ev.reference), ("load", ev.load)):
+        if r is None:
+            continue
+        t, y = r.t[0], r.y[0]
+        idx = np.unique(np.linspace(0, t.size - 1, min(points, t.size)).astype(int))
+        out[key] = {"t": [float(f"{v:.6g}") for v in t[idx]],
+                    "y": [float(f"{v:.6g}") for v in y[idx]],
+                    "final": float(r.final[0])}
+    return out
 
 
 def _first_unstable_gain(gi: GainIntervals, lo: float, hi: float, k: float) -> float | None:

@@ -187,3 +187,19 @@ def near_cancellations(loop: Loop, rtol: float = 1e-3,
                 used.add(j)
                 break
     return out
+
+
+def with_gains(loop: Loop, gains: np.ndarray) -> Loop:
+    """The loop of sample 0 repeated for each gain in ``gains`` (a batch over K)."""
+    g = np.asarray(gains, dtype=np.float64).reshape(-1)
+    count = g.size
+
+    def rep(a: np.ndarray) -> np.ndarray:
+        return np.repeat(a[:1], count, axis=0)
+
+    def rep_tf(tf: Rational) -> Rational:
+        return Rational(rep(tf.num), rep(tf.den), rep(tf.delay))
+
+    return Loop(samples=count, gain=g, n=rep(loop.n), d=rep(loop.d), delay=rep(loop.delay),
+                plant=rep_tf(loop.plant), controller=rep_tf(loop.controller),
+                sensor=rep_tf(loop.sensor), prefilter=rep_tf(loop.prefilter))

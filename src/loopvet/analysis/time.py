@@ -1,0 +1,508 @@
+"""Step and load-disturbance responses of closed-loop maps, dead time treated exactly.
+
+A closed-loop map (see :class:`loopvet.lti.loop.ClosedLoopMap`) is
+``H(s) = P(s) exp(-s tau) / (A(s) + B(s) exp(-s T))`` per sample; polynomial coefficients
+are ascending and every array carries the leading sample axis S.
+
+Notes
+-----
+Method (loop dead time ``T > 0``). Write
+``H = (P/A) exp(-s tau) * 1 / (1 + (B/A) exp(-s T))``. With ``u`` the unit step, the signal
+``e`` of the feedback equation obeys ``e(t) = u(t) - v(t - T)`` with ``v = (B/A)[e]``, and
+the output is ``y(t) = w(t - tau)`` with ``w = (P/A)[e]``. Both ``B/A`` and ``P/A`` must be
+proper (ValueError otherwise); they share the denominator A, so one state-space realisation
+(controllable canonical form of the monic A, balanced by a power-of-two diagonal similarity,
+:func:`scipy.linalg.matrix_balance`) with input e and outputs v and w serves both. It is
+discretised exactly with the matrix exponential of the augmented matrix
+``[[F, g, 0], [0, 0, 1], [0, 0, 0]] h`` (first-order hold: e piecewise linear within a step).
+The step ``h`` is chosen so that ``T = m h`` with an integer ``m >= 1``; then
+``e_k = u_k - v_{k-m}`` uses a stored past sample and the recursion is explicit. This is a
+method-of-steps scheme whose only approximation is the piecewise-linear representation of e
+between grid points: the error is O(h^2) (kinks of e at multiples of T fall on grid points).
+When ``B/A`` is biproper the loop is of neutral type and e jumps at multiples of T; both the
+left and the right limits of e and v are carried at every grid point, so the jumps are
+represented exactly. The output is sampled as right limits.
+
+Method (no loop dead time, ``T = 0``). The closed loop ``P/(A + B)`` is realised and
+discretised the same way; its input is the constant unit step, for which the hold is exact,
+so the grid values are exact up to rounding (``x_{k+1} = Phi x_k + Gamma``).
+
+Output delay ``tau``. For ``T = 0`` the step is shrunk (by less than a factor of two) so
+that tau is a whole number of steps and the response is shifted on the grid. Otherwise, if
+tau is not a multiple of h, ``w(t_j - tau)`` is evaluated inside a step with the
+matrix exponential over the fraction of the step (same hold, no interpolation of w), so the
+shift adds no error beyond that of e.
+
+Time grid. Unless given, the horizon is ``tau + T + 10 / sigma`` with sigma the smallest
+``-Re p`` over the closed-loop poles: the roots of ``A + B`` for ``T = 0``, of ``A Pd + B
+Pn`` (order-6 diagonal Pade approximant ``Pn/Pd`` of ``exp(-s T)``) for ``T > 0``; sigma is
+clipped below at ``1e-4`` times the fastest frequency of the loop. The step obeys ``h <=
+horizon / points`` and ``h <= 1 / (20 w_fast)``, w_fast the largest root magnitude of A, B
+and the closed-loop poles (for ``T > 0`` only Pade poles with ``|p| T <= 6``, where the
+approximant is trustworthy; leading coefficients below ``SCALE_RTOL`` of the largest are
+ignored for these estimates only), and ``h = T / m``. If the response has not come within
+``SETTLE_TOL`` (half the default 2 % band) of the final value over the last 5 % of the grid,
+the horizon is doubled, at most ``HORIZON_DOUBLINGS`` times. When the steps needed exceed
+``max_steps`` the step is enlarged (for ``T > 0`` never beyond T, which shortens the horizon
+instead) and the sample is flagged ``truncated``; a response still outside ``SETTLE_TOL`` at
+the end is flagged too.
+
+Batching. Each sample has its own step and horizon, chosen from that sample alone, so a
+sample's response does not depend on the other samples of the batch; all samples share the
+number of grid points N (the largest need; shorter needs simply run longer). Polynomials
+and states are zero-padded to common shapes (padded states are decoupled and stay zero).
+The time loop is a Python loop over steps; each step is vectorised over the samples
+(arrays of shape (S, n)). The computation is deterministic.
+
+Accuracy. Delay-free loops: grid values to rounding (about 1e-12 relative for
+well-conditioned loops). With dead time: O(h^2); with the default grid the curve agrees
+with independent references to about 2e-6 for smooth loops, 5e-7 for a neutral loop.
+Metrics interpolate linearly between grid points (O(h^2) in the crossing times); the
+disturbance IAE neglects the tail past the horizon, about e^{-10} of it.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.linalg
+
+from ..lti import poly
+from ..lti.loop import ClosedLoopMap
+from ..lti.rational import pade
+
+#: a response counts as settled when the last 5 % of the grid lies within SETTLE_TOL times
+#: the final value (or times the peak, for a zero final value)
+SETTLE_TOL = 0.01
+#: automatic horizon extensions (doublings) at most
+HORIZON_DOUBLINGS = 3
+#: Pade order used only to estimate the time scales of loops with dead time
+PADE_ORDER = 6
+#: grid points per time constant of the fastest dynamics
+STEPS_PER_FAST = 20
+#: lower clip of the decay rate, relative to the fastest frequency of the loop
+SIGMA_FLOOR = 1e-4
+#: time-scale estimates ignore leading coefficients below this fraction of the largest
+SCALE_RTOL = 1e-10
+#: a final value below this fraction of the peak counts as zero (disturbance IAE finite)
+ZERO_FINAL = 1e-12
+
+
+@dataclass(frozen=True, slots=True)
+class StepResponse:
+    """Unit-step response per sample.
+
+    ``t``: (S, N) uniform time points per sample, starting at 0; ``y``: (S, N) response
+    (right limits at jumps); ``final``: (S,) exact final value ``P(0) / (A(0) + B(0))``;
+    ``truncated``: (S,) the horizon or step budget limited the accuracy.
+    """
+
+    t: np.ndarray
+    y: np.ndarray
+    final: np.ndarray
+    truncated: np.ndarray
+
+
+@dataclass(frozen=True, slots=True)
+class _Realisation:
+    """Balanced controllable-canonical state space of one sample: x' = F x + g e,
+    v = cv x + dv e, w = cw x + dw e (cv = 0, dv = 0 for a loop without dead time)."""
+
+    f: np.ndarray
+    g: np.ndarray
+    cv: np.ndarray
+    dv: float
+    cw: np.ndarray
+    dw: float
+
+
+@dataclass(frozen=True, slots=True)
+class _Plan:
+    """Grid of one sample: step h, steps needed n, T = m h, output taken theta into the step
+    ``shift`` steps back; limited: the step budget enlarged h or shortened the horizon."""
+
+    h: float
+    n: int
+    m: int
+    theta: float
+    shift: int
+    limited: bool
+
+
+def step_response(m: ClosedLoopMap, *, horizon: np.ndarray | None = None, points: int = 4000,
+                  max_steps: int = 200_000) -> StepResponse:
+    """Response of ``P e^{-s tau} / (A + B e^{-s T})`` to a unit step at t = 0, batched.
+
+    Parameters
+    ----------
+    m
+        Closed-loop map; ``p``, ``a``, ``b`` ascending coefficients (S, .), ``tau`` and
+        ``delay`` (S,), both >= 0. The loop is assumed stable (not checked).
+    horizon
+        End time per sample (S,) or a scalar; default from the slowest closed-loop pole,
+        extended automatically while the response has not settled (see Notes).
+    points
+        At least this many steps per horizon.
+    max_steps
+        Step budget; honoured when it conflicts with the accuracy constraints (the sample is
+        then flagged ``truncated``).
+
+    Returns
+    -------
+    StepResponse
+        ``final`` is exact, from the final-value theorem: ``P(0) / (A(0) + B(0))``.
+
+    Raises
+    ------
+    ValueError
+        ``P/A`` or ``B/A`` not proper (``T > 0``), ``P/(A + B)`` not proper (``T = 0``), or
+        invalid delays, horizon or budget.
+
+    Notes
+    -----
+    Method-of-steps simulation with exact matrix-exponential discretisation and a
+    first-order hold on the feedback signal, ``T`` an exact multiple of the step; the only
+    error is the piecewise-linear representation of that signal, O(h^2); exact for
+    ``T = 0``. See the module docstring for the grid rules and accuracy.
+    """
+    p, a, b = (poly.as_batch(x) for x in (m.p, m.a, m.b))
+    samples = max(p.shape[0], a.shape[0], b.shape[0], np.size(m.tau), np.size(m.delay))
+    p, a, b = (np.broadcast_to(x, (samples, x.shape[1])) for x in (p, a, b))
+    tau = np.broadcast_to(np.asarray(m.tau, dtype=np.float64).reshape(-1), (samples,))
+    delay = np.broadcast_to(np.asarray(m.delay, dtype=np.float64).reshape(-1), (samples,))
+    if not (np.all(np.isfinite(tau)) and np.all(tau >= 0)):
+        raise ValueError(f"output delay tau must be finite and >= 0, got {tau!r}")
+    if not (np.all(np.isfinite(delay)) and np.all(delay >= 0)):
+        raise ValueError(f"loop delay T must be finite and >= 0, got {delay!r}")
+    if points < 1 or max_steps < 1:
+        raise ValueError(f"points and max_steps must be >= 1, got {points!r}, {max_steps!r}")
+    auto = horizon is None
+    if horizon is None:
+        w_fast, hz = _time_scales(p, a, b, tau, delay)
+    else:
+        hz = np.broadcast_to(np.asarray(horizon, dtype=np.float64).reshape(-1),
+                             (samples,)).copy()
+        if not (np.all(np.isfinite(hz)) and np.all(hz > 0)):
+            raise ValueError(f"horizon must be finite and > 0, got {horizon!r}")
+        w_fast, _ = _time_scales(p, a, b, tau, delay)
+
+    real = [_realise(p[i], a[i], b[i], float(delay[i]), i) for i in range(samples)]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        final = p[:, 0] / (a[:, 0] + b[:, 0])
+
+    plans = [_plan_one(float(hz[i]), float(w_fast[i]), float(delay[i]), float(tau[i]),
+                       points, max_steps) for i in range(samples)]
+    everyone = np.arange(samples)
+    n_points = max(pl.n for pl in plans) + 1
+    y = _simulate(real, plans, everyone, n_points)
+    settled = _settled(y, final)
+    for _ in range(HORIZON_DOUBLINGS if auto else 0):
+        redo = [int(i) for i in everyone if not settled[i] and not plans[i].limited]
+        if not redo:
+            break
+        for i in redo:
+            hz[i] *= 2.0
+            plans[i] = _plan_one(float(hz[i]), float(w_fast[i]), float(delay[i]),
+                                 float(tau[i]), points, max_steps)
+        need = max(plans[i].n for i in redo) + 1
+        if need > n_points:
+            n_points = need
+            y = _simulate(real, plans, everyone, n_points)
+        else:
+            idx = np.asarray(redo)
+            y[idx] = _simulate(real, plans, idx, n_points)
+        settled = _settled(y, final)
+
+    h = np.array([pl.h for pl in plans])
+    t = h[:, None] * np.arange(n_points, dtype=np.float64)[None, :]
+    truncated = np.array([pl.limited for pl in plans]) | ~settled
+    return StepResponse(t=t, y=y, final=final, truncated=truncated)
+
+
+def step_metrics(r: StepResponse, band: float = 0.02) -> dict[str, np.ndarray]:
+    """Reference-step metrics per sample, each of shape (S,).
+
+    With ``y_f`` the exact final value and ``sgn = sign(y_f)``:
+
+    * ``overshoot_pct`` = ``max(0, (max(sgn y) - |y_f|) / |y_f|) * 100``;
+    * ``undershoot_pct`` = ``max(0, -min(sgn y)) / |y_f| * 100`` (initial wrong-way
+      excursion);
+    * ``rise_time_s``: from first reaching 10 % to first reaching 90 % of ``y_f``;
+    * ``settling_time_s``: last time ``|y - y_f| > band |y_f|``, 0 if always inside, NaN
+      if still outside at the last grid point (horizon too short for this band);
+    * ``steady_state_error`` = ``|1 - y_f|``.
+
+    Metrics relative to ``y_f`` are NaN when ``y_f`` is 0 or not finite.
+
+    Notes
+    -----
+    Crossing times are interpolated linearly between grid points (error O(h^2)); extrema
+    are taken over the grid points (error O(h^2) at a smooth extremum).
+    """
+    if not 0.0 < band < 1.0:
+        raise ValueError(f"band must lie in (0, 1), got {band!r}")
+    t, y, yf = r.t, r.y, r.final
+    ok = np.isfinite(yf) & (yf != 0)
+    ayf = np.where(ok, np.abs(yf), 1.0)
+    yfs = np.where(ok, yf, 0.0)
+    ys = np.where(ok, np.sign(yfs), 1.0)[:, None] * y
+    nan = np.full(yf.shape, np.nan)
+    over = np.maximum(0.0, (ys.max(axis=1) - ayf) / ayf) * 100.0
+    under = np.maximum(0.0, -ys.min(axis=1)) / ayf * 100.0 + 0.0   # no -0.0
+    rise = _first_crossing(t, ys, 0.9 * ayf) - _first_crossing(t, ys, 0.1 * ayf)
+    settle = _settling(t, y - yfs[:, None], band * ayf)
+    return {
+        "overshoot_pct": np.where(ok, over, nan),
+        "undershoot_pct": np.where(ok, under, nan),
+        "rise_time_s": np.where(ok, rise, nan),
+        "settling_time_s": np.where(ok, settle, nan),
+        "steady_state_error": np.abs(1.0 - yf),
+    }
+
+
+def disturbance_metrics(r: StepResponse) -> dict[str, np.ndarray]:
+    """Load-disturbance metrics per sample, each of shape (S,).
+
+    * ``disturbance_peak`` = ``max |y|`` over the grid;
+    * ``disturbance_iae`` = integral of ``|y| dt`` over the grid (trapezoid rule); ``inf``
+      when the final value does not vanish (``|y_f| > 1e-12 max |y|``).
+
+    Notes
+    -----
+    The trapezoid rule on the fine grid has error O(h^2) (plus O(h^2) at each sign change
+    of y); the tail beyond the horizon is neglected (the horizon ends once the response has
+    decayed below ``SETTLE_TOL`` of its peak, see :func:`step_response`).
+    """
+    ay = np.abs(r.y)
+    peak = ay.max(axis=1)
+    dt = np.diff(r.t, axis=1)
+    iae = np.sum(0.5 * (ay[:, 1:] + ay[:, :-1]) * dt, axis=1)
+    nonzero = ~(np.abs(r.final) <= ZERO_FINAL * peak)
+    return {"disturbance_peak": peak, "disturbance_iae": np.where(nonzero, np.inf, iae)}
+
+
+# --------------------------------------------------------------------------- internals
+
+
+def _time_scales(p: np.ndarray, a: np.ndarray, b: np.ndarray, tau: np.ndarray,
+                 delay: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Fastest frequency w_fast (S,) and default horizon (S,), see the module Notes."""
+    pn, pd = pade(delay, PADE_ORDER)
+    closed = _scale_roots(poly.add(poly.mul(a, pd), poly.mul(b, pn)))
+    mag = np.abs(closed)
+    trusted = np.isfinite(mag) & ((delay[:, None] == 0) | (mag * delay[:, None] <= PADE_ORDER))
+    parts = [np.where(trusted, mag, 0.0)]
+    for c in (a, b):
+        r = np.abs(_scale_roots(c))
+        parts.append(np.where(np.isfinite(r), r, 0.0))
+    w_fast = np.max(np.concatenate([x for x in parts if x.shape[1]] or [np.zeros((len(a), 1))],
+                                   axis=1), axis=1)
+    with np.errstate(divide="ignore"):
+        w_ref = np.maximum(w_fast, np.where(delay > 0, 1.0 / np.where(delay > 0, delay, 1.0),
+                                            0.0))
+    re = -closed.real
+    sigma = np.where(np.isfinite(re), re, np.inf).min(axis=1, initial=np.inf)
+    floor = np.where(w_ref > 0, SIGMA_FLOOR * w_ref, SIGMA_FLOOR)
+    span = np.where(np.isfinite(sigma), 10.0 / np.maximum(sigma, floor),
+                    np.where(w_ref > 0, 10.0 / np.where(w_ref > 0, w_ref, 1.0), 1.0))
+    return w_fast, tau + delay + span
+
+
+def _scale_roots(c: np.ndarray) -> np.ndarray:
+    """Roots (S, .) NaN-padded, for time scales only: leading coefficients below
+    ``SCALE_RTOL`` of the largest are dropped first, so rounding noise left by block
+    conversions (say 1e-17 s^2) does not pose as a root at 1e14 rad/s. The simulation itself
+    always uses the full polynomials."""
+    deg = poly.effective_degree(c, rtol=SCALE_RTOL)
+    keep = np.arange(c.shape[1])[None, :] <= deg[:, None]
+    return poly.roots_ragged(np.where(keep, c, 0.0))
+
+
+def _realise(p: np.ndarray, a: np.ndarray, b: np.ndarray, delay: float,
+             sample: int) -> _Realisation:
+    """State space of one sample: input e, outputs v = (B/A)[e] and w = (P/A)[e] for
+    ``delay > 0``; input u, output w = (P/(A + B))[u] and v = 0 for ``delay == 0``."""
+    deg_p = _degree(p)
+    if delay > 0:
+        den, name = a, "A"
+        deg_b = _degree(b)
+    else:
+        den, name = poly.add(a[None], b[None])[0], "A + B"
+        deg_b = -1
+    n = _degree(den)
+    if n < 0:
+        raise ValueError(f"sample {sample}: the denominator {name} is the zero polynomial")
+    if deg_p > n:
+        raise ValueError(f"sample {sample}: P/({name}) is not proper (deg P = {deg_p} > "
+                         f"deg {name} = {n}); the step response needs a proper map")
+    if deg_b > n:
+        raise ValueError(f"sample {sample}: B/A is not proper (deg B = {deg_b} > deg A = {n});"
+                         " the exact dead-time simulation needs a proper B/A")
+    lead = den[n]
+    q = den[:n] / lead
+
+    def output(num: np.ndarray) -> tuple[np.ndarray, float]:
+        c = np.zeros(n + 1)
+        k = min(len(num), n + 1)
+        c[:k] = num[:k] / lead
+        d = float(c[n])
+        return c[:n] - d * q, d
+
+    f = np.zeros((n, n))
+    if n:
+        f[:-1, 1:] = np.eye(n - 1)
+        f[-1, :] = -q
+    g = np.zeros(n)
+    if n:
+        g[-1] = 1.0
+    cw, dw = output(p)
+    cv, dv = output(b) if delay > 0 else (np.zeros(n), 0.0)
+    if n > 1:
+        f, (sc, _) = scipy.linalg.matrix_balance(f, permute=False, separate=True)
+        g, cw, cv = g / sc, cw * sc, cv * sc
+    return _Realisation(f=f, g=g, cv=cv, dv=dv, cw=cw, dw=dw)
+
+
+def _degree(c: np.ndarray) -> int:
+    nz = np.nonzero(c)[0]
+    return int(nz[-1]) if nz.size else -1
+
+
+def _plan_one(horizon: float, w_fast: float, delay: float, tau: float, points: int,
+              max_steps: int) -> _Plan:
+    h = horizon / points
+    if w_fast > 0:
+        h = min(h, 1.0 / (STEPS_PER_FAST * w_fast))
+    limited = False
+    if delay > 0:
+        h = delay / math.ceil(delay / h * (1 - 1e-12))
+    elif tau >= h:
+        h = tau / math.ceil(tau / h * (1 - 1e-12))
+    n = math.ceil(horizon / h * (1 - 1e-12))
+    if n > max_steps:
+        limited = True
+        h = horizon / max_steps
+        if delay > 0:
+            h = delay / max(1, math.floor(delay / h * (1 + 1e-12)))
+        elif tau >= h:
+            h = tau / math.floor(tau / h * (1 + 1e-12))
+        n = min(max_steps, math.ceil(horizon / h * (1 - 1e-12)))
+    m = max(1, round(delay / h)) if delay > 0 else 1
+    ratio = tau / h
+    q = round(ratio)
+    if abs(ratio - q) <= 1e-9 * max(1.0, ratio):
+        theta, shift = 0.0, q
+    else:
+        q = math.floor(ratio)
+        theta, shift = h - (tau - q * h), q + 1
+    return _Plan(h=h, n=max(n, 1), m=m, theta=theta, shift=shift, limited=limited)
+
+
+def _hold(f: np.ndarray, g: np.ndarray, dt: float, h: float) -> tuple[np.ndarray, ...]:
+    """Exact propagation over ``dt`` of x' = f x + g e with e linear over a step h:
+    x(dt) = Phi x0 + G0 e0 + G1 e1 (e0, e1 the values at the step's ends)."""
+    n = len(g)
+    aug = np.zeros((n + 2, n + 2))
+    aug[:n, :n] = f
+    aug[:n, n] = g
+    aug[n, n + 1] = 1.0
+    ex = scipy.linalg.expm(aug * dt)
+    f1, f2 = ex[:n, n], ex[:n, n + 1] / h
+    return ex[:n, :n], f1 - f2, f2
+
+
+def _simulate(real: list[_Realisation], plans: list[_Plan], idx: np.ndarray,
+              n_points: int) -> np.ndarray:
+    """Grid responses (len(idx), n_points) of the samples ``idx``; one Python loop over steps,
+    vectorised over samples."""
+    s = len(idx)
+    dim = max(1, max(len(real[i].g) for i in idx))
+    phi = np.zeros((s, dim, dim))
+    g0 = np.zeros((s, dim))
+    g1 = np.zeros((s, dim))
+    rows = np.zeros((s, 2, dim))      # [cv; output row at theta]
+    dv = np.zeros(s)
+    o0 = np.zeros(s)
+    o1 = np.zeros(s)
+    lag = np.ones(s, dtype=np.int64)
+    shift = np.zeros(s, dtype=np.int64)
+    for j, i in enumerate(idx):
+        rl, pl = real[i], plans[i]
+        n = len(rl.g)
+        lag[j], shift[j], dv[j] = pl.m, pl.shift, rl.dv
+        if n:
+            phi[j, :n, :n], g0[j, :n], g1[j, :n] = _hold(rl.f, rl.g, pl.h, pl.h)
+            rows[j, 0, :n] = rl.cv
+        frac = pl.theta / pl.h
+        if pl.theta > 0 and n:
+            ph, a0, a1 = _hold(rl.f, rl.g, pl.theta, pl.h)
+            rows[j, 1, :n] = rl.cw @ ph
+            o0[j] = rl.cw @ a0 + rl.dw * (1.0 - frac)
+            o1[j] = rl.cw @ a1 + rl.dw * frac
+        else:
+            rows[j, 1, :n] = rl.cw
+            o0[j], o1[j] = rl.dw * (1.0 - frac), rl.dw * frac
+    ring_len = int(lag.max()) + 1
+    ring_minus = np.zeros((s, ring_len))
+    ring_plus = np.zeros((s, ring_len))
+    out = np.zeros((s, n_points))
+    rng = np.arange(s)
+    x = np.zeros((s, dim, 1))
+    e_plus = np.ones(s)
+    e_minus = np.zeros(s)
+    for k in range(n_points):
+        cx = np.matmul(rows, x)[:, :, 0]
+        slot = k % ring_len
+        ring_minus[:, slot] = cx[:, 0] + dv * e_minus
+        ring_plus[:, slot] = cx[:, 0] + dv * e_plus
+        back = k + 1 - lag
+        past = back >= 0
+        col = back % ring_len
+        nxt_minus = 1.0 - np.where(past, ring_minus[rng, col], 0.0)
+        nxt_plus = 1.0 - np.where(past, ring_plus[rng, col], 0.0)
+        out[:, k] = cx[:, 1] + o0 * e_plus + o1 * nxt_minus
+        x = np.matmul(phi, x) + (g0 * e_plus[:, None] + g1 * nxt_minus[:, None])[:, :, None]
+        e_plus, e_minus = nxt_plus, nxt_minus
+    pos = np.arange(n_points)[None, :] - shift[:, None]
+    return np.where(pos >= 0, np.take_along_axis(out, np.maximum(pos, 0), axis=1), 0.0)
+
+
+def _settled(y: np.ndarray, final: np.ndarray) -> np.ndarray:
+    tail = y[:, -max(2, math.ceil(0.05 * y.shape[1])):]
+    peak = np.abs(y).max(axis=1)
+    zero = np.abs(final) <= ZERO_FINAL * peak
+    ref = np.where(zero, peak, np.abs(final))
+    dev = np.abs(tail - np.where(zero, 0.0, final)[:, None]).max(axis=1)
+    return np.isfinite(final) & (dev <= SETTLE_TOL * ref)
+
+
+def _first_crossing(t: np.ndarray, y: np.ndarray, level: np.ndarray) -> np.ndarray:
+    """First time y reaches ``level`` (per sample), interpolated; NaN if never."""
+    above = y >= level[:, None]
+    found = above.any(axis=1)
+    j = np.argmax(above, axis=1)
+    jm = np.maximum(j - 1, 0)
+    rng = np.arange(y.shape[0])
+    y0, y1 = y[rng, jm], y[rng, j]
+    t0, t1 = t[rng, jm], t[rng, j]
+    rise = y1 - y0
+    frac = np.where(j > 0, (level - y0) / np.where(rise != 0, rise, 1.0), 0.0)
+    return np.where(found, t0 + frac * (t1 - t0), np.nan)
+
+
+def _settling(t: np.ndarray, dev: np.ndarray, tol: np.ndarray) -> np.ndarray:
+    """Last time |dev| > tol, interpolated; 0 if never, NaN if still outside at the end."""
+    outside = np.abs(dev) > tol[:, None]
+    n = dev.shape[1]
+    last = n - 1 - np.argmax(outside[:, ::-1], axis=1)
+    nxt = np.minimum(last + 1, n - 1)
+    rng = np.arange(dev.shape[0])
+    d0, d1 = dev[rng, last], dev[rng, nxt]
+    lev = np.sign(d0) * tol
+    step = d0 - d1
+    frac = (d0 - lev) / np.where(step != 0, step, 1.0)
+    ts = t[rng, last] + frac * (t[rng, nxt] - t[rng, last])
+    ts = np.where(last == n - 1, np.nan, ts)
+    return np.where(outside.any(axis=1), ts, 0.0)
