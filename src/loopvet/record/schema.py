@@ -142,6 +142,12 @@ class Spec(ABC):
     def json_schema(self) -> dict[str, Any]:
         """The JSON Schema (2020-12) fragment of this spec."""
 
+    def _described(self, out: dict[str, Any]) -> dict[str, Any]:
+        text = getattr(self, "description", "")
+        if text:
+            out["description"] = text
+        return out
+
     def _scalar(self, node: yaml.Node, w: Walk, key: str) -> Any:
         if not isinstance(node, yaml.ScalarNode):
             return w.fail(node, key, f"expected {self.expected}, got {describe(node)}")
@@ -150,6 +156,15 @@ class Spec(ABC):
         except ValueError:
             return w.fail(node, key, f"the YAML tag {node.tag!r} is not allowed in a record; "
                           "write a plain value")
+
+
+def _bounded(out: dict[str, Any], minimum: float | None, maximum: float | None
+             ) -> dict[str, Any]:
+    if minimum is not None:
+        out["minimum"] = minimum
+    if maximum is not None:
+        out["maximum"] = maximum
+    return out
 
 
 @dataclass
@@ -190,16 +205,10 @@ class Number(Spec):
     def json_schema(self) -> dict[str, Any]:
         out: dict[str, Any] = {"anyOf": [{"type": "number"},
                                          {"type": "string", "pattern": _FLOAT_TEXT.pattern}]}
-        num = out["anyOf"][0]
-        if self.minimum is not None:
-            num["minimum"] = self.minimum
-        if self.maximum is not None:
-            num["maximum"] = self.maximum
+        num = _bounded(out["anyOf"][0], self.minimum, self.maximum)
         if self.exclusive_minimum is not None:
             num["exclusiveMinimum"] = self.exclusive_minimum
-        if self.description:
-            out["description"] = self.description
-        return out
+        return self._described(out)
 
 
 @dataclass
@@ -224,14 +233,8 @@ class Integer(Spec):
         return value
 
     def json_schema(self) -> dict[str, Any]:
-        out: dict[str, Any] = {"type": "integer"}
-        if self.minimum is not None:
-            out["minimum"] = self.minimum
-        if self.maximum is not None:
-            out["maximum"] = self.maximum
-        if self.description:
-            out["description"] = self.description
-        return out
+        out = _bounded({"type": "integer"}, self.minimum, self.maximum)
+        return self._described(out)
 
 
 @dataclass
@@ -249,9 +252,7 @@ class Boolean(Spec):
 
     def json_schema(self) -> dict[str, Any]:
         out: dict[str, Any] = {"type": "boolean"}
-        if self.description:
-            out["description"] = self.description
-        return out
+        return self._described(out)
 
 
 @dataclass
@@ -279,9 +280,7 @@ class Text(Spec):
         out: dict[str, Any] = {"type": "string", "maxLength": self.max_length}
         if self.pattern:
             out["pattern"] = f"^(?:{self.pattern})$"
-        if self.description:
-            out["description"] = self.description
-        return out
+        return self._described(out)
 
 
 @dataclass
@@ -302,9 +301,7 @@ class Choice(Spec):
 
     def json_schema(self) -> dict[str, Any]:
         out: dict[str, Any] = {"enum": list(self.choices)}
-        if self.description:
-            out["description"] = self.description
-        return out
+        return self._described(out)
 
 
 @dataclass
@@ -339,9 +336,7 @@ class Expression(Spec):
         out: dict[str, Any] = {"anyOf": [{"type": "number"},
                                          {"type": "string", "minLength": 1,
                                           "maxLength": exprmod.MAX_TEXT}]}
-        if self.description:
-            out["description"] = self.description
-        return out
+        return self._described(out)
 
 
 def fail_expression(w: Walk, node: yaml.Node, key: str, text: str,
@@ -391,9 +386,7 @@ class ListOf(Spec):
     def json_schema(self) -> dict[str, Any]:
         out: dict[str, Any] = {"type": "array", "items": self.item.json_schema(),
                                "minItems": self.min_items, "maxItems": self.max_items}
-        if self.description:
-            out["description"] = self.description
-        return out
+        return self._described(out)
 
 
 @dataclass
@@ -444,9 +437,7 @@ class Fields(Spec):
                                "additionalProperties": False}
         if self.required:
             out["required"] = list(self.required)
-        if self.description:
-            out["description"] = self.description
-        return out
+        return self._described(out)
 
 
 @dataclass
@@ -485,9 +476,7 @@ class NamedMap(Spec):
                                "patternProperties": {f"^(?:{self.pattern})$":
                                                      self.value.json_schema()},
                                "additionalProperties": False, "maxProperties": self.max_items}
-        if self.description:
-            out["description"] = self.description
-        return out
+        return self._described(out)
 
 
 @dataclass
@@ -510,9 +499,7 @@ class ByKind(Spec):
     def json_schema(self) -> dict[str, Any]:
         options = [s.json_schema() for s in (self.scalar, self.sequence, self.mapping) if s]
         out: dict[str, Any] = {"anyOf": options}
-        if self.description:
-            out["description"] = self.description
-        return out
+        return self._described(out)
 
 
 def mapping_items(node: yaml.Node, w: Walk, key: str) -> Any:
