@@ -105,3 +105,9 @@ def classic_gain_margin_differs(classic_db: float, exact_db: float) -> Finding:
                            f"stability-interval margin ({exact_db:.4g} dB): with several "
                            "phase crossovers, open-loop unstable poles or a conditionally "
                            "stable loop, only the interval says how far K may rise")
+
+
+def refine_not_done() -> Finding:
+    return Finding(kind="refine_not_done", severity="warning", key="sweep.refine",
+                   message="sweep.refine is not carried out by this version of loopvet: the "
+                           "worst cases are those of the samples only")

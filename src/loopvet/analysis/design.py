@@ -31,6 +31,7 @@ from .gain import GainIntervals, gain_margins, stable_gain_intervals
 from .locus import locus_facts
 from .poles import is_stable, pade_order
 from .regions import holds, metric_at_gains, region_intervals
+from .sweep import make_plan
 
 #: gains sampled over gain.range when the worst pole metric is sought (plus refinement)
 RANGE_SAMPLES = 201
@@ -123,6 +124,10 @@ def check_record(record: Record) -> DesignResult:
     regions = {r.key: region_intervals(r.key, r.min, r.max, model.n, model.d)[0]
                for r in record.requirements if r.key in POLE_KEYS}
     entries = _judge(record, loop, gi, model, regions, stable, metrics, band)
+    sweep_block = None
+    if record.sweep is not None:
+        sweep_entries, sweep_block = _sweep(record, band, found)
+        entries += sweep_entries
     failed = any(e.status == "fail" for e in entries)
     negative = bool(record.gain.range and record.gain.range[0] < 0) or k < 0
     gain_block: dict[str, Any] = {
@@ -144,7 +149,7 @@ def check_record(record: Record) -> DesignResult:
         status="fail" if failed else "pass", title=record.title,
         gain=gain_block, locus=locus, poles=pairs(poles[0][np.isfinite(poles[0])]),
         metrics=metrics, requirements=tuple(entries), findings=tuple(found),
-        extra={"delay": float(loop.delay[0]), "pade_order": ev.pade_order,
+        sweep=sweep_block, extra={"delay": float(loop.delay[0]), "pade_order": ev.pade_order,
                "frequency": frequency, "responses": _responses_json(ev)},
     )
 
@@ -242,6 +247,58 @@ def _judge(record: Record, loop: Loop, gi: GainIntervals, model: PoleModel,
             value, kk = worst[req.key]
             entries.append(judge(req, value, scope="gain", where={"gain": kk}))
     return entries
+
+
+def _sweep(record: Record, band: float, found: list[fd.Finding]
+           ) -> tuple[list[Entry], dict[str, Any]]:
+    """Swept requirements over the plan's samples, evaluated as one batch.
+
+    Each sample is the loop at that parameter point and at its K (the nominal K unless
+    include_gain); over_gain requirements are checked per sample at that K only.
+    """
+    plan = make_plan(record)
+    count = plan.samples
+    values = params.values(record, count, plan.values)
+    loop = assemble(record, values, count, gain=plan.gains)
+    reqs = [r for r in record.requirements if r.sweep]
+    need_time = any(r.key in TIME_KEYS for r in reqs)
+    interest = np.array([[k, *(record.gain.range or ())] for k in plan.gains])
+    ev = evaluate(loop, pade=record.pade_order, band=band, gains_of_interest=interest,
+                  time=need_time)
+    fails = np.zeros(count, dtype=bool)
+    entries: list[Entry] = []
+    worst: dict[str, Any] = {}
+    for req in reqs:
+        if req.key == "stability":
+            bad = ~ev.stable
+            i = int(np.argmax(bad)) if bad.any() else 0
+            where = _where(plan, i)
+            entries.append(judge_stability(req, not bad.any(), scope="sweep",
+                                           where=where if bad.any() else None))
+            worst["stability"] = {"value": bool(not bad.any()), **where}
+        else:
+            vals = ev.metrics[req.key]
+            score = np.array([headroom(v, req) if not np.isnan(v) else -np.inf
+                              for v in vals])
+            bad = score < 0
+            i = int(np.argmin(score))
+            where = _where(plan, i)
+            entries.append(judge(req, _value(vals[i]), scope="sweep", where=where))
+            worst[req.key] = {"value": _value(vals[i]), **where}
+        fails |= bad
+    if record.sweep is not None and record.sweep.refine:
+        found.append(fd.refine_not_done())
+    failed = int(fails.sum())
+    block = {"samples": count, "failed_samples": failed, "yield": (count - failed) / count,
+             "methods": list(record.sweep.methods) if record.sweep else [], "worst": worst}
+    return entries, block
+
+
+def _where(plan: Any, i: int) -> dict[str, Any]:
+    out: dict[str, Any] = {"parameters": plan.point(i)}
+    if "K" in plan.names:
+        out["gain"] = float(plan.gains[i])
+    return out
 
 
 def _band(record: Record) -> float:
