@@ -32,6 +32,16 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"loopvet: error: {message}\n")
 
 
+def _positive(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected at least 1, got {value}")
+    return value
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="loopvet", description="Check a fleet of feedback-loop records.",
                      formatter_class=argparse.RawDescriptionHelpFormatter,
@@ -47,6 +57,12 @@ def build_parser() -> argparse.ArgumentParser:
                        help="output folder for results.json (default reports/latest/)")
     check.add_argument("--format", choices=("text", "json"), default="text",
                        help="what to print on stdout: a line per record, or the results JSON")
+    check.add_argument("--jobs", type=_positive, default=os.cpu_count() or 1, metavar="N",
+                       help="records checked in parallel processes (default: the machine's "
+                            "cores); results are identical for any N")
+    check.add_argument("--cluster", metavar="ADDRESS", default=None,
+                       help="run on a dask.distributed scheduler, e.g. tcp://127.0.0.1:8786 "
+                            "(needs the extra loopvet[cluster])")
     show = sub.add_parser("show", help="print a readable analysis of one record")
     show.add_argument("record", metavar="RECORD", help="one record file")
     sub.add_parser("schema", help="print the JSON Schema of the record format")
@@ -73,16 +89,25 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 3 if result.status == "invalid" else 0
     from .run import Settings
 
-    return _check(Settings(paths=tuple(args.paths), out=args.out, format=args.format))
+    return _check(Settings(paths=tuple(args.paths), out=args.out, format=args.format,
+                           jobs=args.jobs, cluster=args.cluster))
 
 
 def _check(settings: Settings) -> int:
+    from .cluster import ClusterUnavailable
     from .report.files import write_atomic
     from .report.text import render
     from .results import dumps
     from .run import check_fleet
 
-    fleet = check_fleet(settings)
+    progress = _progress if sys.stderr.isatty() else None
+    try:
+        fleet = check_fleet(settings, progress=progress)
+    except ClusterUnavailable as exc:
+        print(f"loopvet: {exc}", file=sys.stderr)
+        return 2
+    if progress:
+        sys.stderr.write("\r\x1b[K")
     payload = dumps(fleet.to_json())
     results_path = os.path.join(settings.out, "results.json")
     try:
@@ -95,6 +120,13 @@ def _check(settings: Settings) -> int:
     else:
         sys.stdout.write(render(fleet, results_path))
     return int(fleet.summary.exit_code)
+
+
+def _progress(done: int, total: int) -> None:
+    width = 30
+    filled = width * done // max(total, 1)
+    sys.stderr.write(f"\rchecking [{'#' * filled}{'.' * (width - filled)}] {done}/{total}")
+    sys.stderr.flush()
 
 
 def entry() -> None:
