@@ -101,3 +101,24 @@ def test_plans_are_deterministic_and_nominal_first():
         assert (p1.values[name] == p2.values[name]).all()
     assert p1.values["a"].min() >= 0.8 - 1e-12 and p1.values["a"].max() <= 1.2 + 1e-12
     assert math.isclose(p1.gains.min(), 0.5) and math.isclose(p1.gains.max(), 2.0)
+
+
+def test_refine_finds_the_corner_between_samples():
+    """With lhs samples only, the local search walks from the worst sample towards the
+    corner tau = 2 where the exact gain margin (Routh) is lowest, and says so."""
+    rec = load_text("""\
+        parameters:
+          tau: {nominal: 1, min: 0.5, max: 2}
+        plant: {transfer: "1/(s*(s+1)*(tau*s+1))"}
+        controller: {transfer: "0.5"}
+        requirements:
+          gain_margin_db: {min: 1}
+        sweep: {method: lhs, samples: 6, seed: 4, refine: true}
+        """)
+    res = check_record(rec)
+    e = next(x for x in res.requirements if x.key == "gain_margin_db" and x.scope == "sweep")
+    tau, k = sp.Rational(2), sp.Rational(1, 2)
+    exact = float(20 * sp.log((tau + 1) / (tau * k), 10))
+    assert e.note.startswith("refined")
+    assert e.value == pytest.approx(exact, rel=1e-4)
+    assert res.sweep["worst"]["gain_margin_db"]["refined"] is True

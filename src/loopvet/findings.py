@@ -106,8 +106,3 @@ def classic_gain_margin_differs(classic_db: float, exact_db: float) -> Finding:
                            "phase crossovers, open-loop unstable poles or a conditionally "
                            "stable loop, only the interval says how far K may rise")
 
-
-def refine_not_done() -> Finding:
-    return Finding(kind="refine_not_done", severity="warning", key="sweep.refine",
-                   message="sweep.refine is not carried out by this version of loopvet: the "
-                           "worst cases are those of the samples only")

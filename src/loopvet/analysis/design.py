@@ -287,11 +287,65 @@ def _sweep(record: Record, band: float, found: list[fd.Finding]
             worst[req.key] = {"value": _value(vals[i]), **where}
         fails |= bad
     if record.sweep is not None and record.sweep.refine:
-        found.append(fd.refine_not_done())
+        entries = [_refine(record, plan, e, band) if e.scope == "sweep" and
+                   e.key != "stability" else e for e in entries]
+        for e in entries:
+            if e.note.startswith("refined"):
+                worst[e.key] = {"value": e.value, **(e.where or {}), "refined": True}
     failed = int(fails.sum())
     block = {"samples": count, "failed_samples": failed, "yield": (count - failed) / count,
              "methods": list(record.sweep.methods) if record.sweep else [], "worst": worst}
     return entries, block
+
+
+#: evaluations allowed to the local search of each swept requirement (refine: true)
+REFINE_EVALUATIONS = 60
+
+
+def _refine(record: Record, plan: Any, entry: Entry, band: float) -> Entry:
+    """Bounded local search (scipy.optimize.minimize, Powell, within the box) from the worst
+    sample for a worse point; returns the entry at the refined point when one is found."""
+    from scipy.optimize import minimize
+
+    req = record.requirement(entry.key)
+    assert req is not None and entry.where is not None
+    axes = list(params.uncertain(record))
+    if not axes:
+        return entry
+    lo = np.array([p.low for p in axes], dtype=float)
+    hi = np.array([p.high for p in axes], dtype=float)
+    start = np.array([entry.where["parameters"][p.name] for p in axes], dtype=float)
+    k = float(entry.where.get("gain", record.gain.nominal))
+    time_needed = req.key in TIME_KEYS
+
+    def value_at(x: np.ndarray) -> float:
+        axes_vals = {p.name: np.array([v]) for p, v in zip(axes, x, strict=True)}
+        try:
+            loop = assemble(record, params.values(record, 1, axes_vals), 1,
+                            gain=np.array([k]))
+            ev = evaluate(loop, pade=record.pade_order, band=band, time=time_needed)
+        except (RecordInvalid, ValueError):
+            return math.nan
+        return float(ev.metrics[req.key][0])
+
+    def cost(x: np.ndarray) -> float:
+        v = value_at(np.clip(x, lo, hi))
+        return headroom(v, req) if not math.isnan(v) else -1e300
+
+    base = entry.headroom if entry.headroom is not None else -1e300
+    res = minimize(cost, start, method="Powell", bounds=list(zip(lo, hi, strict=True)),
+                   options={"maxfev": REFINE_EVALUATIONS, "xtol": 1e-6, "ftol": 1e-9})
+    if not res.fun < base - 1e-12:
+        return Entry(key=entry.key, status=entry.status, value=entry.value, bound=entry.bound,
+                     headroom=entry.headroom, scope="sweep", where=entry.where,
+                     note="local search found no worse point")
+    x = np.clip(res.x, lo, hi)
+    where = {**entry.where, "parameters": {p.name: float(v) for p, v in zip(axes, x,
+                                                                            strict=True)}}
+    new = judge(req, _value(value_at(x)), scope="sweep", where=where)
+    return Entry(key=new.key, status=new.status, value=new.value, bound=new.bound,
+                 headroom=new.headroom, scope="sweep", where=where,
+                 note="refined by a local search from the worst sample")
 
 
 def _where(plan: Any, i: int) -> dict[str, Any]:
