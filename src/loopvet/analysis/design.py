@@ -258,13 +258,9 @@ def _sweep(record: Record, band: float, found: list[fd.Finding]
     """
     plan = make_plan(record)
     count = plan.samples
-    values = params.values(record, count, plan.values)
-    loop = assemble(record, values, count, gain=plan.gains)
     reqs = [r for r in record.requirements if r.sweep]
     need_time = any(r.key in TIME_KEYS for r in reqs)
-    interest = np.array([[k, *(record.gain.range or ())] for k in plan.gains])
-    ev = evaluate(loop, pade=record.pade_order, band=band, gains_of_interest=interest,
-                  time=need_time)
+    ev = _evaluate_chunked(record, plan, band, need_time)
     fails = np.zeros(count, dtype=bool)
     entries: list[Entry] = []
     worst: dict[str, Any] = {}
@@ -296,6 +292,37 @@ def _sweep(record: Record, band: float, found: list[fd.Finding]
     block = {"samples": count, "failed_samples": failed, "yield": (count - failed) / count,
              "methods": list(record.sweep.methods) if record.sweep else [], "worst": worst}
     return entries, block
+
+
+#: samples evaluated per batch in a sweep: bounds memory for very large plans
+SWEEP_CHUNK = 2048
+
+
+@dataclass(frozen=True, slots=True)
+class _SweepValues:
+    metrics: dict[str, np.ndarray]
+    stable: np.ndarray
+
+
+def _evaluate_chunked(record: Record, plan: Any, band: float, need_time: bool
+                      ) -> _SweepValues:
+    """Evaluate the plan in chunks of SWEEP_CHUNK samples (one batched call per chunk)."""
+    metrics: dict[str, list[np.ndarray]] = {}
+    stable: list[np.ndarray] = []
+    for start in range(0, plan.samples, SWEEP_CHUNK):
+        sl = slice(start, min(start + SWEEP_CHUNK, plan.samples))
+        gains = plan.gains[sl]
+        count = gains.size
+        values = params.values(record, count, {k: v[sl] for k, v in plan.values.items()})
+        loop = assemble(record, values, count, gain=gains)
+        interest = np.array([[k, *(record.gain.range or ())] for k in gains])
+        ev = evaluate(loop, pade=record.pade_order, band=band, gains_of_interest=interest,
+                      time=need_time)
+        for key, arr in ev.metrics.items():
+            metrics.setdefault(key, []).append(arr)
+        stable.append(ev.stable)
+    return _SweepValues(metrics={k: np.concatenate(v) for k, v in metrics.items()},
+                        stable=np.concatenate(stable))
 
 
 #: evaluations allowed to the local search of each swept requirement (refine: true)
