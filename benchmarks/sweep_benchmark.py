@@ -486,18 +486,21 @@ def main(argv: list[str] | None = None) -> int:
     return 0
 
 
-def profile_once(folder: str, out: str, top: int = 15) -> None:
-    """One loopvet run (--jobs 1) under cProfile; the top entries by own time."""
+def profile_once(folder: str, out: str, records: int = 3, top: int = 15) -> None:
+    """loopvet (--jobs 1) on the first ``records`` records under cProfile; top entries."""
     import cProfile
     import pstats
 
+    files = sorted(os.path.join(folder, f) for f in os.listdir(folder))[:records]
+    settings = Settings(paths=(folder,), out=out, format="json", jobs=1)
     prof = cProfile.Profile()
     prof.enable()
-    run_loopvet(folder, out, 1)
+    check_fleet(settings, files=files)
     prof.disable()
     text = io.StringIO()
     pstats.Stats(prof, stream=text).sort_stats("tottime").print_stats(top)
-    print(f"\ncProfile of one loopvet run (--jobs 1), top {top} by own time:")
+    print(f"\ncProfile of loopvet (--jobs 1) on the first {len(files)} records, "
+          f"top {top} by own time:")
     lines = text.getvalue().splitlines()
     start = next((i for i, ln in enumerate(lines) if "ncalls" in ln), 0)
     for ln in lines[start:]:

@@ -61,15 +61,8 @@ def _stem(path: str) -> str:
 
 def check_file(path: str) -> DesignResult:
     """Read, validate and analyse one file; every failure becomes an invalid result."""
-    try:
-        with open(path, "rb") as fh:
-            data = fh.read(8 * 1024 * 1024)
-    except OSError as exc:
-        return DesignResult(name=_stem(path), revision=None, path=path, status="invalid",
-                            errors=(RecordProblem(path=path, line=0, column=0, key="",
-                                                  message=f"cannot read the file: "
-                                                          f"{exc.strerror}"),))
-    return check_data(path, data)
+    item = _read(path)
+    return item if isinstance(item, DesignResult) else check_data(*item)
 
 
 def check_data(path: str, data: bytes) -> DesignResult:

@@ -30,7 +30,7 @@ from .frequency import phase_crossovers
 from .gain import GainIntervals, gain_margins, stable_gain_intervals
 from .locus import locus_facts
 from .poles import is_stable, pade_order
-from .regions import holds, metric_at_gains, region_intervals
+from .regions import metric_at_gains, region_intervals
 from .sweep import make_plan
 
 #: gains sampled over gain.range when the worst pole metric is sought (plus refinement)
@@ -469,4 +469,4 @@ def _first_unstable_gain(gi: GainIntervals, lo: float, hi: float, k: float) -> f
     return min(cands, key=lambda g: abs(g - k)) if cands else None
 
 
-__all__ = ["check_record", "pairs", "holds"]
+__all__ = ["check_record", "pairs"]
