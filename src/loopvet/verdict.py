@@ -6,6 +6,8 @@ import math
 from dataclasses import dataclass
 from typing import Any, Literal
 
+import numpy as np
+
 from .record.model import Requirement
 
 Status = Literal["pass", "fail", "not_evaluated"]
@@ -33,6 +35,18 @@ def headroom(value: float, req: Requirement) -> float:
     if req.max is not None:
         parts.append((req.max - value) / (abs(req.max) if req.max else 1.0))
     return min(parts) if parts else math.inf
+
+
+def headroom_array(values: np.ndarray, req: Requirement) -> np.ndarray:
+    """:func:`headroom` for an array of values; NaN (metric missing) scores -inf."""
+    v = np.asarray(values, dtype=np.float64)
+    out = np.full(v.shape, np.inf)
+    with np.errstate(invalid="ignore"):
+        if req.min is not None:
+            out = np.minimum(out, (v - req.min) / (abs(req.min) if req.min else 1.0))
+        if req.max is not None:
+            out = np.minimum(out, (req.max - v) / (abs(req.max) if req.max else 1.0))
+    return np.where(np.isnan(v), -np.inf, out)
 
 
 def judge(req: Requirement, value: float | None, *, scope: str = "nominal",

@@ -22,7 +22,7 @@ from ..record import params
 from ..record.errors import RecordInvalid
 from ..record.model import Record, Requirement
 from ..results import DesignResult
-from ..verdict import Entry, headroom, judge, judge_stability
+from ..verdict import Entry, headroom, headroom_array, judge, judge_stability
 from .branches import trace
 from .delay import delay_gain_intervals
 from .evaluate import FREQUENCY_KEYS, TIME_KEYS, Evaluation, evaluate
@@ -140,7 +140,7 @@ def check_record(record: Record) -> DesignResult:
     if loop.has_delay:
         gain_block["search_bound"] = gi.search_bound
     frequency = {"gain_crossovers": [{"frequency": c.frequency, "lag_deg": c.lag_deg}
-                                     for c in ev.crossovers[0]],
+                                     for c in ev.crossovers(0)],
                  "phase_crossovers": pc}
     locus = locus_facts(loop.n[0], loop.d[0], include_negative=negative)
     locus["branches"] = _branches(loop, gi, locus, negative)
@@ -259,8 +259,7 @@ def _sweep(record: Record, band: float, found: list[fd.Finding]
     plan = make_plan(record)
     count = plan.samples
     reqs = [r for r in record.requirements if r.sweep]
-    need_time = any(r.key in TIME_KEYS for r in reqs)
-    ev = _evaluate_chunked(record, plan, band, need_time)
+    ev = _evaluate_chunked(record, plan, band, {r.key for r in reqs})
     fails = np.zeros(count, dtype=bool)
     entries: list[Entry] = []
     worst: dict[str, Any] = {}
@@ -274,8 +273,7 @@ def _sweep(record: Record, band: float, found: list[fd.Finding]
             worst["stability"] = {"value": bool(not bad.any()), **where}
         else:
             vals = ev.metrics[req.key]
-            score = np.array([headroom(v, req) if not np.isnan(v) else -np.inf
-                              for v in vals])
+            score = headroom_array(vals, req)
             bad = score < 0
             i = int(np.argmin(score))
             where = _where(plan, i)
@@ -304,9 +302,10 @@ class _SweepValues:
     stable: np.ndarray
 
 
-def _evaluate_chunked(record: Record, plan: Any, band: float, need_time: bool
+def _evaluate_chunked(record: Record, plan: Any, band: float, keys: set[str]
                       ) -> _SweepValues:
-    """Evaluate the plan in chunks of SWEEP_CHUNK samples (one batched call per chunk)."""
+    """Evaluate the plan in chunks of SWEEP_CHUNK samples (one batched call per chunk),
+    computing only the metrics in ``keys`` (the swept requirements)."""
     metrics: dict[str, list[np.ndarray]] = {}
     stable: list[np.ndarray] = []
     for start in range(0, plan.samples, SWEEP_CHUNK):
@@ -315,9 +314,10 @@ def _evaluate_chunked(record: Record, plan: Any, band: float, need_time: bool
         count = gains.size
         values = params.values(record, count, {k: v[sl] for k, v in plan.values.items()})
         loop = assemble(record, values, count, gain=gains)
-        interest = np.array([[k, *(record.gain.range or ())] for k in gains])
+        interest = np.column_stack([gains, *(np.full(count, x) for x in
+                                             (record.gain.range or ()))])
         ev = evaluate(loop, pade=record.pade_order, band=band, gains_of_interest=interest,
-                      time=need_time)
+                      keys=keys)
         for key, arr in ev.metrics.items():
             metrics.setdefault(key, []).append(arr)
         stable.append(ev.stable)
@@ -350,7 +350,8 @@ def _refine(record: Record, plan: Any, entry: Entry, band: float) -> Entry:
         try:
             loop = assemble(record, params.values(record, 1, axes_vals), 1,
                             gain=np.array([k]))
-            ev = evaluate(loop, pade=record.pade_order, band=band, time=time_needed)
+            ev = evaluate(loop, pade=record.pade_order, band=band, time=time_needed,
+                          keys=(req.key,))
         except (RecordInvalid, ValueError):
             return math.nan
         return float(ev.metrics[req.key][0])
@@ -404,13 +405,13 @@ def _worst_over_gain(loop: Loop, record: Record, gi: GainIntervals, reqs: list[R
     lo, hi = record.gain.range
     ks = np.unique(np.concatenate([np.linspace(lo, hi, GAIN_SAMPLES), [record.gain.nominal]]))
     need_time = any(r.key in TIME_KEYS for r in reqs)
+    keys = [r.key for r in reqs]
     ev = evaluate(with_gains(loop, ks), pade=record.pade_order, band=band,
-                  intervals=[gi] * ks.size, time=need_time)
+                  intervals=[gi] * ks.size, time=need_time, keys=keys)
     out: dict[str, tuple[float | None, float]] = {}
     for req in reqs:
         vals = ev.metrics[req.key]
-        score = np.array([headroom(v, req) if np.isfinite(v) or np.isinf(v) else -np.inf
-                          for v in vals])
+        score = headroom_array(vals, req)
         i = int(np.argmin(score))
         value, k_worst = _value(vals[i]), float(ks[i])
         if req.key in FREQUENCY_KEYS and value is not None and ks.size > 1:
@@ -418,7 +419,7 @@ def _worst_over_gain(loop: Loop, record: Record, gi: GainIntervals, reqs: list[R
 
             def f(kk: float, key: str = req.key, rq: Requirement = req) -> float:
                 e = evaluate(with_gains(loop, np.array([kk])), pade=record.pade_order,
-                             intervals=[gi], time=False)
+                             intervals=[gi], time=False, keys=(key,))
                 v = float(e.metrics[key][0])
                 return headroom(v, rq) if np.isfinite(v) else -1e300
 
@@ -427,7 +428,7 @@ def _worst_over_gain(loop: Loop, record: Record, gi: GainIntervals, reqs: list[R
                                            "maxiter": 40})
             if res.fun < score[i]:
                 e = evaluate(with_gains(loop, np.array([res.x])), pade=record.pade_order,
-                             intervals=[gi], time=False)
+                             intervals=[gi], time=False, keys=(req.key,))
                 value, k_worst = _value(e.metrics[req.key][0]), float(res.x)
         out[req.key] = (value, k_worst)
     return out

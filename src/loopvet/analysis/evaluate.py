@@ -8,16 +8,18 @@ frequency metrics treat dead time exactly; time metrics simulate it exactly.
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from ..lti import poly
 from ..lti.loop import ClosedLoopMap, Loop
+from ..metrics import METRICS
 from . import frequency as fq
 from .delay import delay_gain_intervals
-from .gain import GainIntervals, gain_margins, stable_gain_intervals
-from .poles import closed_loop_poles, pole_metrics
+from .gain import GainIntervals, crossing_arrays, gain_margins, margins_at, stable_gain_intervals
+from .poles import closed_loop_poles, is_stable, pole_metrics
 from .time import StepResponse, disturbance_metrics, step_metrics, step_response
 
 FREQUENCY_KEYS = ("phase_margin_deg", "delay_margin_s", "sensitivity_peak",
@@ -25,21 +27,38 @@ FREQUENCY_KEYS = ("phase_margin_deg", "delay_margin_s", "sensitivity_peak",
                   "crossover_frequency", "bandwidth")
 TIME_KEYS = ("overshoot_pct", "undershoot_pct", "rise_time_s", "settling_time_s",
              "steady_state_error", "disturbance_peak", "disturbance_iae")
+ALL_KEYS = tuple(METRICS)
+
+
+GAIN_KEYS = ("gain_margin_db", "gain_reduction_margin_db")
+PEAK_KEYS = ("sensitivity_peak", "complementary_sensitivity_peak", "control_sensitivity_peak")
 
 
 @dataclass(frozen=True, slots=True)
 class Evaluation:
-    """Metrics per sample (NaN where a metric does not exist) and what they came from."""
+    """Metrics per sample (NaN where a metric does not exist) and what they came from.
+
+    ``crossover_w``/``crossover_lag``: gain crossovers and their lags (S, M), NaN-padded;
+    ``intervals``: per-sample stable gain intervals when they were computed (dead time, or
+    given by the caller), else None (delay-free batches use the crossing arrays directly).
+    """
 
     metrics: dict[str, np.ndarray]
     stable: np.ndarray
-    intervals: list[GainIntervals]
-    crossovers: list[list[fq.Crossover]]
+    intervals: list[GainIntervals] | None
+    crossover_w: np.ndarray
+    crossover_lag: np.ndarray
     poles: np.ndarray
     pade_order: int | None
     reference: StepResponse | None = None
     load: StepResponse | None = None
-    grid: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    grid: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+
+    def crossovers(self, i: int) -> list[fq.Crossover]:
+        """Sample ``i``'s gain crossovers with their lags, by frequency."""
+        keep = np.isfinite(self.crossover_w[i])
+        return [fq.Crossover(frequency=float(w), lag_deg=float(lag)) for w, lag in
+                zip(self.crossover_w[i][keep], self.crossover_lag[i][keep], strict=True)]
 
 
 def intervals_of(loop: Loop, gains_of_interest: np.ndarray) -> list[GainIntervals]:
@@ -50,42 +69,61 @@ def intervals_of(loop: Loop, gains_of_interest: np.ndarray) -> list[GainInterval
 
 def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
              gains_of_interest: np.ndarray | None = None, time: bool = True,
-             intervals: list[GainIntervals] | None = None) -> Evaluation:
-    """All metrics for every sample of ``loop`` (its own gain per sample)."""
+             intervals: list[GainIntervals] | None = None,
+             keys: Iterable[str] | None = None) -> Evaluation:
+    """Metrics for every sample of ``loop`` (its own gain per sample), batched.
+
+    ``keys``: the metrics wanted (default: every metric of the requirement table); only
+    what they need is computed, so a sweep pays for its swept requirements only. Stability
+    comes from ``intervals`` when given, from the exact dead-time analysis for loops with
+    dead time, and otherwise from the closed-loop poles (no gain interval classification:
+    the gain margins use the nearest crossing gains, see :func:`gain.margins_at`).
+    Every step is vectorised over the samples.
+    """
     s = loop.samples
-    goi = gains_of_interest if gains_of_interest is not None else loop.gain[:, None]
-    ivs = intervals if intervals is not None else intervals_of(loop, goi)
-    stable = np.array([iv.interval_containing(float(k)) is not None
-                       for iv, k in zip(ivs, loop.gain, strict=True)])
-    out: dict[str, np.ndarray] = {}
-    gm = np.array([gain_margins(iv, float(k)) for iv, k in zip(ivs, loop.gain, strict=True)],
-                  dtype=object).reshape(s, 2)
-    out["gain_margin_db"] = _num(gm[:, 0])
-    out["gain_reduction_margin_db"] = _num(gm[:, 1])
+    want = set(ALL_KEYS if keys is None else keys)
     ps = closed_loop_poles(loop, order=pade)
+    out: dict[str, np.ndarray] = {}
+    if intervals is None and loop.has_delay:
+        goi = gains_of_interest if gains_of_interest is not None else loop.gain[:, None]
+        intervals = intervals_of(loop, goi)
+    if intervals is not None:
+        stable = np.array([iv.interval_containing(float(k)) is not None
+                           for iv, k in zip(intervals, loop.gain, strict=True)], dtype=bool)
+        if want & set(GAIN_KEYS):
+            gm = np.array([gain_margins(iv, float(k)) for iv, k in
+                           zip(intervals, loop.gain, strict=True)], dtype=object).reshape(s, 2)
+            out["gain_margin_db"] = _num(gm[:, 0])
+            out["gain_reduction_margin_db"] = _num(gm[:, 1])
+    else:
+        stable = is_stable(ps.poles)
+        if want & set(GAIN_KEYS):
+            gains, _ = crossing_arrays(loop.n, loop.d)
+            out["gain_margin_db"], out["gain_reduction_margin_db"] = margins_at(
+                gains, loop.gain, stable)
     out |= pole_metrics(ps.poles)
-    cross = fq.gain_crossovers(loop)
-    lags = fq.lags(loop, cross)
-    pm = np.full(s, np.nan)
-    dm = np.full(s, np.nan)
-    wc = np.full(s, np.nan)
-    for i in range(s):
-        p, d = fq.margins(lags[i], bool(stable[i]))
-        pm[i] = np.nan if p is None else p
-        dm[i] = np.nan if d is None else d
-        wc[i] = max(cross[i]) if cross[i] else np.nan
-    out["phase_margin_deg"], out["delay_margin_s"], out["crossover_frequency"] = pm, dm, wc
-    extra = sorted({w for c in cross for w in c})
-    grid = fq.frequency_grid(loop, extra, ps.poles)
-    sens, comp, ctrl = loop.sensitivity(), loop.complementary(), loop.control()
     unstable = ~stable
-    for key, m in (("sensitivity_peak", sens), ("complementary_sensitivity_peak", comp),
-                   ("control_sensitivity_peak", ctrl)):
-        v = fq.peak(m, grid)
-        out[key] = np.where(unstable, np.nan, v)
-    out["bandwidth"] = np.where(unstable, np.nan, fq.bandwidth(loop.reference(), grid))
+    freq_keys = want & set(FREQUENCY_KEYS)
+    cross_w = np.zeros((s, 0))
+    cross_lag = np.zeros((s, 0))
+    grid = np.zeros((s, 0))
+    if freq_keys:
+        cross_w = fq.crossover_array(loop)
+        cross_lag = fq.lag_array(loop, cross_w)
+        out["phase_margin_deg"], out["delay_margin_s"], out["crossover_frequency"] = \
+            fq.margin_arrays(cross_w, cross_lag, stable)
+    if freq_keys & {*PEAK_KEYS, "bandwidth"}:
+        grid = fq.sample_grid(loop, cross_w, ps.poles)
+        maps = {"sensitivity_peak": loop.sensitivity,
+                "complementary_sensitivity_peak": loop.complementary,
+                "control_sensitivity_peak": loop.control}
+        for key in PEAK_KEYS:
+            if key in want:
+                out[key] = np.where(unstable, np.nan, fq.peak(maps[key](), grid))
+        if "bandwidth" in want:
+            out["bandwidth"] = np.where(unstable, np.nan, fq.bandwidth(loop.reference(), grid))
     ref = load = None
-    if time:
+    if time and want & set(TIME_KEYS):
         ref, load = _responses(loop, stable)
         if ref is not None and load is not None:
             sm = step_metrics(ref, band=band)
@@ -96,9 +134,9 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
         else:
             for key in TIME_KEYS:
                 out[key] = np.full(s, np.nan)
-    return Evaluation(metrics=out, stable=stable, intervals=ivs, crossovers=lags,
-                      poles=ps.poles, pade_order=ps.pade_order, reference=ref, load=load,
-                      grid=grid)
+    return Evaluation(metrics=out, stable=stable, intervals=intervals, crossover_w=cross_w,
+                      crossover_lag=cross_lag, poles=ps.poles, pade_order=ps.pade_order,
+                      reference=ref, load=load, grid=grid)
 
 
 def _num(col: np.ndarray) -> np.ndarray:

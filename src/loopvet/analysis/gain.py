@@ -83,8 +83,13 @@ def newton_crossings(n: np.ndarray, d: np.ndarray, delay: np.ndarray, w: np.ndar
             det = fw.real * ne.imag - fw.imag * ne.real
             step_w = -(f.real * ne.imag - f.imag * ne.real) / det
             step_k = -(fw.real * f.imag - fw.imag * f.real) / det
-            ww = ww + np.where(np.isfinite(step_w), step_w, 0.0)
-            k = k + np.where(np.isfinite(step_k), step_k, 0.0)
+            step_w = np.where(np.isfinite(step_w), step_w, 0.0)
+            step_k = np.where(np.isfinite(step_k), step_k, 0.0)
+            ww = ww + step_w
+            k = k + step_k
+            if np.all((np.abs(step_w) <= 1e-15 * np.abs(ww))
+                      & (np.abs(step_k) <= 1e-15 * np.abs(k))):
+                break                       # converged everywhere: further steps change nothing
         dv, ne, _, _ = terms(ww)
         resid = np.abs(dv + k * ne)
         size = np.abs(dv) + np.abs(k * ne)
@@ -99,21 +104,25 @@ def frequency_scale(n: np.ndarray, d: np.ndarray) -> np.ndarray:
 
     Substituting s = w_s u (coefficients c_k w_s^k) puts the roots within |u| <= 2, which keeps
     companion-matrix eigenvalues accurate for loops whose roots span many decades.
+    Vectorised over samples (no per-sample loop).
     """
-    est = []
-    for c in (n, d):
-        deg = poly.effective_degree(c)
-        out = np.ones(c.shape[0])
-        for i in range(c.shape[0]):
-            m = int(deg[i])
-            if m <= 0:
-                continue
-            lead = abs(c[i, m])
-            ratios = [(abs(c[i, k]) / lead) ** (1.0 / (m - k)) for k in range(m)
-                      if c[i, k] != 0]
-            out[i] = 2.0 * max(ratios) if ratios else 1.0
-        est.append(out)
-    return np.maximum(np.maximum(est[0], est[1]), 1e-300)
+    return np.maximum(np.maximum(root_bound(n), root_bound(d)), 1e-300)
+
+
+def root_bound(c: np.ndarray) -> np.ndarray:
+    """Per sample, 2 max_k |c_k/c_m|^(1/(m-k)) with m the effective degree (Fujiwara's bound
+    on the root magnitudes); 1 for constants. Shape (S,)."""
+    c = np.asarray(c, dtype=np.float64)
+    samples, width = c.shape
+    deg = poly.effective_degree(c)
+    lead = np.abs(c[np.arange(samples), np.maximum(deg, 0)])
+    k = np.arange(width)[None, :]
+    power = deg[:, None] - k
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        ratio = np.abs(c) / lead[:, None]
+        term = np.where((power > 0) & (c != 0), ratio ** (1.0 / np.maximum(power, 1)), 0.0)
+    best = term.max(axis=1, initial=0.0)
+    return np.where((deg > 0) & (best > 0), 2.0 * best, 1.0)
 
 
 def scaled(c: np.ndarray, ws: np.ndarray) -> np.ndarray:
@@ -152,24 +161,80 @@ def _dedupe(values: list[tuple[float, float]], rtol: float = 1e-9) -> list[tuple
     return out
 
 
-def delay_free_crossings(n: np.ndarray, d: np.ndarray) -> list[list[Crossing]]:
-    """All gains K at which a root of D + K N is on the imaginary axis or at infinity."""
+def crossing_arrays(n: np.ndarray, d: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Every crossing of D + K N as padded arrays: gains (S, M) and frequencies (S, M), NaN
+    where a sample has fewer crossings (not sorted, not deduplicated).
+
+    Columns: the polished positive-axis crossings, then K = -D(0)/N(0) at w = 0 (when
+    N(0) != 0), then the root through infinity of a biproper loop (frequency inf).
+    """
     samples = max(n.shape[0], d.shape[0])
     n = np.broadcast_to(n, (samples, n.shape[1]))
     d = np.broadcast_to(d, (samples, d.shape[1]))
     cand = _positive_axis_candidates(n, d)
-    w, k, ok = newton_crossings(n, d, np.zeros(samples), np.nan_to_num(cand, nan=1.0))
-    ok &= np.isfinite(cand)
+    gains = np.full(cand.shape, np.nan)
+    freqs = np.full(cand.shape, np.nan)
+    rows, cols = np.nonzero(np.isfinite(cand))       # polish the real candidates only
+    if rows.size:
+        w, k, ok = newton_crossings(n[rows], d[rows], np.zeros(rows.size),
+                                    cand[rows, cols][:, None])
+        gains[rows, cols] = np.where(ok[:, 0], k[:, 0], np.nan)
+        freqs[rows, cols] = np.where(ok[:, 0], w[:, 0], np.nan)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        k0 = np.where(n[:, 0] != 0, -d[:, 0] / np.where(n[:, 0] != 0, n[:, 0], 1.0) + 0.0,
+                      np.nan)
     degn, degd = poly.effective_degree(n), poly.effective_degree(d)
+    rows = np.arange(samples)
+    biproper = (degn == degd) & (degd >= 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        kinf = np.where(biproper, -d[rows, np.maximum(degd, 0)]
+                        / np.where(biproper, n[rows, np.maximum(degn, 0)], 1.0), np.nan)
+    gains = np.concatenate([gains, k0[:, None], kinf[:, None]], axis=1)
+    freqs = np.concatenate([freqs, np.where(np.isnan(k0), np.nan, 0.0)[:, None],
+                            np.where(np.isnan(kinf), np.nan, np.inf)[:, None]], axis=1)
+    return gains, freqs
+
+
+def delay_free_crossings(n: np.ndarray, d: np.ndarray) -> list[list[Crossing]]:
+    """All gains K at which a root of D + K N is on the imaginary axis or at infinity."""
+    gains, freqs = crossing_arrays(n, d)
     out: list[list[Crossing]] = []
-    for i in range(samples):   # ragged assembly only; the numerics above are batched
-        found = [(float(k[i, j]), float(w[i, j])) for j in np.nonzero(ok[i])[0]]
-        if n[i, 0] != 0:
-            found.append((float(-d[i, 0] / n[i, 0]) + 0.0, 0.0))
-        if degn[i] == degd[i] >= 0:
-            found.append((float(-d[i, degd[i]] / n[i, degn[i]]), np.inf))
+    for g_row, w_row in zip(gains, freqs, strict=True):   # ragged assembly only
+        keep = ~np.isnan(g_row)
+        found = [(float(g), float(w)) for g, w in zip(g_row[keep], w_row[keep], strict=True)]
         out.append([Crossing(gain=g, frequency=f) for g, f in _dedupe(found)])
     return out
+
+
+def margins_at(gains: np.ndarray, k: np.ndarray, stable: np.ndarray
+               ) -> tuple[np.ndarray, np.ndarray]:
+    """(gain_margin_db, gain_reduction_margin_db) per sample from padded crossing gains.
+
+    The stable interval that holds K is bounded by the nearest crossing gains below and above
+    K (stability can change only at a crossing, and at a crossing a root is on the axis), so
+    this equals :func:`gain_margins` on the intervals without classifying them. NaN where the
+    sample is not stable. Vectorised over samples.
+    """
+    k = np.asarray(k, dtype=np.float64)
+    g = np.where(np.isnan(gains), np.nan, gains)
+    with np.errstate(invalid="ignore"):
+        above = np.where(g > k[:, None], g, np.inf).min(axis=1, initial=np.inf)
+        below = np.where(g < k[:, None], g, -np.inf).max(axis=1, initial=-np.inf)
+    return interval_margins(below, above, k, stable)
+
+
+def interval_margins(lo: np.ndarray, hi: np.ndarray, k: np.ndarray, stable: np.ndarray
+                     ) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`gain_margins` vectorised: the margins at K of the stable intervals (lo, hi)."""
+    pos = k > 0
+    low = np.where(pos, lo, -hi)
+    high = np.where(pos, hi, -lo)
+    mag = np.abs(k)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rise = np.where(np.isinf(high), np.inf, 20.0 * np.log10(high / mag))
+        fall = np.where(low <= 0, np.inf, 20.0 * np.log10(mag / low))
+    ok = np.asarray(stable, dtype=bool)
+    return np.where(ok, rise, np.nan), np.where(ok, fall, np.nan)
 
 
 def _test_points(bounds: list[float]) -> list[float]:

@@ -44,6 +44,21 @@ class ClosedLoopMap:
             -ss * self.delay[:, None])
         return poly.evaluate(self.p, ss) * np.exp(-ss * self.tau[:, None]) / den
 
+    def magnitude(self, w: np.ndarray) -> np.ndarray:
+        """|m(jw)| at real frequencies ``w`` ((points,) or (S, points)), in real arithmetic
+        (:func:`loopvet.lti.poly.on_axis`); the output delay tau does not change it."""
+        ar, ai = poly.on_axis(self.a, w)
+        br, bi = poly.on_axis(self.b, w)
+        pr, pi = (ar, ai) if self.p is self.a else (br, bi) if self.p is self.b else \
+            poly.on_axis(self.p, w)
+        if np.any(self.delay):
+            wt = np.asarray(w, dtype=np.float64) * self.delay[:, None]
+            c, sn = np.cos(wt), np.sin(wt)
+            ar, ai = ar + br * c + bi * sn, ai + bi * c - br * sn
+        else:
+            ar, ai = ar + br, ai + bi
+        return np.sqrt((pr * pr + pi * pi) / (ar * ar + ai * ai))
+
 
 @dataclass(frozen=True, slots=True)
 class Loop:

@@ -138,6 +138,39 @@ def evaluate(a: NDArray, x: NDArray) -> NDArray:
     return result
 
 
+_ALTERNATING = np.where(np.arange(64) % 2 == 0, 1.0, -1.0)
+
+
+def on_axis(a: NDArray, w: NDArray) -> tuple[NDArray, NDArray]:
+    """Real and imaginary parts of each sample's polynomial at s = jw for real ``w``.
+
+    ``w`` has shape (points,) or (samples, points). With x = w^2,
+    ``a(jw) = E(x) + j w O(x)``, ``E_m = (-1)^m a_2m``, ``O_m = (-1)^m a_(2m+1)``: two real
+    Horner schemes of half the degree, about four times cheaper than complex arithmetic and
+    with the same rounding behaviour. Returns two real arrays of shape (samples, points).
+    """
+    ww = np.asarray(w, dtype=np.float64)
+    if ww.ndim == 1:
+        ww = ww[None, :]
+    x = ww * ww
+    shape = np.broadcast_shapes((a.shape[0], 1), ww.shape)
+
+    def horner(c: NDArray) -> NDArray:
+        c = c * _ALTERNATING[: c.shape[1]] if c.shape[1] <= _ALTERNATING.size else \
+            c * np.where(np.arange(c.shape[1]) % 2 == 0, 1.0, -1.0)
+        if c.shape[1] == 1:
+            return np.broadcast_to(c, shape)
+        out = c[:, -1:] * x + c[:, -2:-1]
+        for k in range(c.shape[1] - 3, -1, -1):
+            out *= x
+            out += c[:, k : k + 1]
+        return out
+
+    re = horner(a[:, 0::2])
+    im = horner(a[:, 1::2]) * ww if a.shape[1] > 1 else np.zeros(shape)
+    return re, im
+
+
 def derivative(a: NDArray) -> NDArray:
     """Derivative d/ds of each sample's polynomial (degree drops by one, at least a constant)."""
     if a.shape[1] == 1:
