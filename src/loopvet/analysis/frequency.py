@@ -72,7 +72,7 @@ def crossover_array(loop: Loop) -> np.ndarray:
     with np.errstate(invalid="ignore"):
         keep = (np.abs(x.imag) <= 1e-3 * np.abs(x) + 1e-300) & (x.real > 0)
     cand = np.where(keep, np.sqrt(np.abs(x.real)) * ws[:, None], np.nan)
-    w = np.full(cand.shape, np.nan)
+    w: np.ndarray = np.full_like(cand, np.nan, dtype=np.float64)
     rows, cols = np.nonzero(np.isfinite(cand))            # polish the real candidates only
     if rows.size:
         sub = Loop(samples=rows.size, gain=k[rows], n=n[rows], d=d[rows],
@@ -83,7 +83,7 @@ def crossover_array(loop: Loop) -> np.ndarray:
             mag = np.abs(sub.open_loop(1j * wp))
             ok = np.isfinite(wp) & (wp > 0) & (np.abs(mag - 1.0) <= 1e-9)
         w[rows, cols] = np.where(ok[:, 0], wp[:, 0], np.nan)
-    w = np.asarray(np.sort(w, axis=1), dtype=np.float64)   # NaN sorts last
+    w = np.sort(w, axis=1)                                 # NaN sorts last
     if w.shape[1] > 1:                                    # drop repeats of one crossover
         with np.errstate(invalid="ignore"):
             dup = np.zeros(w.shape, dtype=bool)
