@@ -33,6 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from loopvet import __version__
+from loopvet.analysis.design import _sweep as sweep_stage
 from loopvet.analysis.evaluate import evaluate
 from loopvet.analysis.sweep import make_plan
 from loopvet.lti.loop import Loop, assemble
@@ -210,6 +211,18 @@ def run_loopvet(folder: str, out: str, jobs: int) -> tuple[float, dict]:
     return elapsed, fleet.to_json()
 
 
+def time_sweep_stage(folder: str, names: list[str]) -> float:
+    """Seconds spent in the sweep stage alone (plan, batched evaluation, worst cases) over
+    all records, as ``loopvet check`` runs it after the nominal analysis."""
+    total = 0.0
+    for nm in names:
+        record = read_record(os.path.join(folder, nm + ".yaml"))
+        t0 = time.perf_counter()
+        sweep_stage(record, 0.02, [])
+        total += time.perf_counter() - t0
+    return total
+
+
 def maxrss_mib() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0   # Linux: KiB
 
@@ -344,7 +357,13 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--profile", action="store_true",
                     help="afterwards, profile one loopvet run and print the top entries")
     ap.add_argument("--keep", metavar="DIR", help="write the fleet here and keep it")
+    ap.add_argument("--memory-samples", type=int, default=0, metavar="N",
+                    help="instead of the comparison: run 'loopvet check' in a child process "
+                         "on two records (order 8, with and without dead time) with an "
+                         "N-sample lhs sweep each, and print its time and peak RSS")
     args = ap.parse_args(argv)
+    if args.memory_samples:
+        return memory_case(args.memory_samples, args.seed, args.keep)
     if args.quick:
         args.records, args.samples = 5, 64
     limit = args.ref_samples or None
@@ -381,6 +400,8 @@ def main(argv: list[str] | None = None) -> int:
     rss_after = maxrss_mib()
     nominal_times = [run_loopvet(nosweep_dir, os.path.join(base, f"out-nominal{r}"),
                                  args.jobs)[0] for r in range(repeats)]
+    stage_times = [time_sweep_stage(fleet_dir, [s.name for s in specs])
+                   for _ in range(repeats)]
     designs = result["designs"]
     invalid = [d["name"] for d in designs if d["status"] == "invalid"]
     total = sum(d["sweep"]["samples"] for d in designs if d.get("sweep"))
@@ -389,6 +410,7 @@ def main(argv: list[str] | None = None) -> int:
     t_nom = statistics.median(nominal_times)
     us_lv = t_lv / total * 1e6
     us_lv_marginal = max(t_lv - t_nom, 0.0) / total * 1e6
+    us_stage = statistics.median(stage_times) / total * 1e6
     print(f"\nloopvet check: {len(designs)} records, {total} samples "
           f"(plan size incl. nominal), {sum(d['status'] == 'pass' for d in designs)} pass / "
           f"{sum(d['status'] == 'fail' for d in designs)} fail / {len(invalid)} invalid; "
@@ -460,6 +482,7 @@ def main(argv: list[str] | None = None) -> int:
     print(f"  {'method':<52}{'us/sample':>12}")
     print(f"  {'loopvet check (wall time / total samples)':<52}{us_lv:>12.1f}")
     print(f"  {'loopvet, sweep only (minus the no-sweep run)':<52}{us_lv_marginal:>12.1f}")
+    print(f"  {'loopvet sweep stage alone (timed per record)':<52}{us_stage:>12.1f}")
     print(f"  {'(a) per-sample script (roots + 2000-pt grid)':<52}{us_a:>12.1f}")
     print(f"  {'(b) floor: batched eigvals of D + K N':<52}{us_b:>12.2f}")
     print(f"  {'ratio (a) / loopvet':<52}{us_a / us_lv:>12.3g}")
@@ -467,6 +490,8 @@ def main(argv: list[str] | None = None) -> int:
           f"{us_a / us_lv_marginal if us_lv_marginal > 0 else math.inf:>12.3g}")
     print(f"  {'ratio loopvet / (b)':<52}{us_lv / us_b:>12.4g}")
     print(f"  {'ratio loopvet sweep-only / (b)':<52}{us_lv_marginal / us_b:>12.4g}")
+    print(f"  {'ratio (a) / loopvet sweep stage':<52}{us_a / us_stage:>12.3g}")
+    print(f"  {'ratio loopvet sweep stage / (b)':<52}{us_stage / us_b:>12.4g}")
     print(f"  (a) timed on {sub_note}; (b) on all {b_samples} samples, companion build + "
           "eigvals only\n  (characteristic polynomials assembled beforehand, untimed). "
           f"Dead-time loops: Pade({PADE_ORDER}) for poles in all three.")
@@ -482,6 +507,41 @@ def main(argv: list[str] | None = None) -> int:
           "Ms = largest grid value).")
     if args.profile:
         profile_once(fleet_dir, os.path.join(base, "out-profile"))
+    tmp.cleanup()
+    return 0
+
+
+def memory_case(samples: int, seed: int, keep: str | None) -> int:
+    """Peak memory of one ``loopvet check`` process on two records with huge sweeps."""
+    import subprocess
+
+    rng = np.random.default_rng(seed)
+    specs: list[Spec] = []
+    i = 0
+    while len(specs) < 2:                       # one order-8 loop with, one without dead time
+        sp = make_spec(i, rng)
+        i += 1
+        if sp.order == 8 and sp.delay == (len(specs) == 0):
+            specs.append(sp)
+    tmp = tempfile.TemporaryDirectory(prefix="loopvet-memory-")
+    base = keep or tmp.name
+    folder = os.path.join(base, "fleet-memory")
+    write_fleet(folder, specs, samples, seed, sweep=True)
+    code = ("import sys, resource; from loopvet.cli import main; rc = main(sys.argv[1:]); "
+            "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, file=sys.stderr); "
+            "sys.exit(rc)")
+    t0 = time.perf_counter()
+    proc = subprocess.run([sys.executable, "-c", code, "check", folder, "--out",
+                           os.path.join(base, "out-memory"), "--jobs", "1"],
+                          capture_output=True, text=True, check=False)
+    elapsed = time.perf_counter() - t0
+    rss = int(proc.stderr.strip().splitlines()[-1]) / 1024.0
+    print(f"memory case: 2 records (order 8; one with dead time), lhs {samples} samples each, "
+          f"--jobs 1, one run")
+    print(f"  exit code {proc.returncode}; wall time {elapsed:.1f} s "
+          f"({elapsed / (2 * (samples + 1)) * 1e6:.0f} us/sample incl. start-up)")
+    print(f"  peak RSS of the loopvet process: {rss:.0f} MiB")
+    print("  " + proc.stdout.strip().replace("\n", "\n  "))
     tmp.cleanup()
     return 0
 

@@ -17,22 +17,29 @@ lag_i = (180 deg + arg L(j w_i)) mod 360 deg at each crossover w_i. Stable loop:
 
 Peaks
 -----
-Ms = sup |S|, Mt = sup |T|, max |K C S| are found on a frequency set built from the loop:
-a logarithmic grid (48 points per decade) spanning two decades beyond the smallest and
-largest root magnitudes of D, N and the closed-loop characteristic polynomial, 41 points
-across every lightly damped root (at b + k|a|/4, k = -20..20, for a root a + jb: a
-resonance peak is a few |a| wide), and for dead time a linear grid with spacing pi/(16 T) up
-to the frequency beyond which |L| < 1e-3 (so the ripple of period 2 pi/T is sampled 32 times
-a period), together with the crossovers. The three largest local maxima of every map are
-then refined by golden-section search in log w between their neighbours, to 1e-9 relative
-in w, which puts the peak value within about 1e-12 relative (the peak is flat); the value
-as w -> infinity is included. This brackets every peak that is wider than the grid
-spacing; a peak narrower than that would need a root with damping below about 1e-3 of its
-frequency, which the grid resolves explicitly around every root.
+Ms = sup |S|, Mt = sup |T|, max |K C S| are found on each sample's own frequency set
+(:func:`sample_grid`): a logarithmic grid (PER_DECADE = 20 points per decade) from a
+hundredth of the smallest to a hundred times the largest root magnitude of D, N (Fujiwara
+bounds from the coefficients) and the closed-loop poles, 9 points across every lightly
+damped closed-loop pole (at b + k|a|/2, k = -4..4, for a pole a + jb with |a| < |b|: the
+resonance it causes is about |a| wide, and the grid there is within 3 % of its top), and for
+dead time a linear grid with spacing pi/(16 T) up to the frequency beyond which |L| < 1e-3
+(the ripple of period 2 pi/T is sampled 32 times a period), together with the crossovers.
+Magnitudes are evaluated in real arithmetic (even and odd parts at s = jw). The largest
+local maximum of the grid, and the second when its grid value is at least SECOND_PEAK = 0.8
+of the largest (a grid that is within a few per cent of every peak top cannot let a lower
+one win), are refined by nested grids in log w (17 points, 7 rounds, each 8 times
+narrower), which puts the peak value within about 1e-14 relative (the peak is flat at the
+top); the value as w -> infinity is included. This brackets every peak that is wider than
+the grid spacing; a narrower one needs a closed-loop pole near the axis, around which the
+grid is refined explicitly.
 
 ``bandwidth`` is the first frequency at which |T_ref(jw)| falls to |T_ref(0)|/sqrt(2) (the
-reference-to-output map, prefilter included), refined by Brent's method; inf if it never
-does, null if T_ref(0) = 0.
+reference-to-output map, prefilter included), narrowed by nested grids to about 1e-15
+relative; inf if it never does, null if T_ref(0) = 0.
+
+Batching: every function here takes the whole batch; padded (S, M) arrays carry the
+ragged parts (crossovers per sample) with NaN, and no Python loop runs over samples.
 """
 
 from __future__ import annotations
