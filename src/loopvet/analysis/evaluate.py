@@ -15,6 +15,7 @@ import numpy as np
 
 from ..lti import poly
 from ..lti.loop import ClosedLoopMap, Loop
+from ..lti.loop import rows as loop_rows
 from ..metrics import METRICS
 from . import frequency as fq
 from .delay import delay_gain_intervals
@@ -113,15 +114,10 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
         out["phase_margin_deg"], out["delay_margin_s"], out["crossover_frequency"] = \
             fq.margin_arrays(cross_w, cross_lag, stable)
     if freq_keys & {*PEAK_KEYS, "bandwidth"}:
-        grid = fq.sample_grid(loop, cross_w, ps.poles)
-        maps = {"sensitivity_peak": loop.sensitivity,
-                "complementary_sensitivity_peak": loop.complementary,
-                "control_sensitivity_peak": loop.control}
-        for key in PEAK_KEYS:
-            if key in want:
-                out[key] = np.where(unstable, np.nan, fq.peak(maps[key](), grid))
-        if "bandwidth" in want:
-            out["bandwidth"] = np.where(unstable, np.nan, fq.bandwidth(loop.reference(), grid))
+        wanted = [k for k in (*PEAK_KEYS, "bandwidth") if k in want]
+        grid = _peaks(loop, cross_w, ps.poles, wanted, out)
+        for key in wanted:
+            out[key] = np.where(unstable, np.nan, out[key])
     ref = load = None
     if time and want & set(TIME_KEYS):
         ref, load = _responses(loop, stable)
@@ -137,6 +133,35 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
     return Evaluation(metrics=out, stable=stable, intervals=intervals, crossover_w=cross_w,
                       crossover_lag=cross_lag, poles=ps.poles, pade_order=ps.pade_order,
                       reference=ref, load=load, grid=grid)
+
+
+#: samples per block of the peak search for loops with dead time, whose frequency sets
+#: hold a linear ripple grid of up to 40 000 points (memory bound)
+DELAY_BLOCK = 128
+
+
+def _peaks(loop: Loop, cross_w: np.ndarray, poles: np.ndarray, keys: list[str],
+           out: dict[str, np.ndarray]) -> np.ndarray:
+    """Peaks and bandwidth into ``out``, in row blocks for loops with dead time; returns the
+    frequency set of the first block (for the report of a single loop)."""
+    s = loop.samples
+    step = DELAY_BLOCK if loop.has_delay else max(s, 1)
+    for key in keys:
+        out[key] = np.full(s, np.nan)
+    first = np.zeros((0, 0))
+    for start in range(0, s, step):
+        blk = slice(start, min(start + step, s))
+        sub = loop_rows(loop, blk) if step < s else loop
+        grid = fq.sample_grid(sub, cross_w[blk], poles[blk])
+        if start == 0:
+            first = grid
+        maps = {"sensitivity_peak": sub.sensitivity,
+                "complementary_sensitivity_peak": sub.complementary,
+                "control_sensitivity_peak": sub.control}
+        for key in keys:
+            out[key][blk] = fq.bandwidth(sub.reference(), grid) if key == "bandwidth" \
+                else fq.peak(maps[key](), grid)
+    return first
 
 
 def _num(col: np.ndarray) -> np.ndarray:

@@ -51,6 +51,7 @@ import numpy as np
 
 from ..lti import poly
 from ..lti.loop import ClosedLoopMap, Loop
+from ..lti.loop import rows as loop_rows
 from .gain import frequency_scale, root_bound, scaled
 
 _GOLDEN = (math.sqrt(5.0) - 1.0) / 2.0
@@ -82,9 +83,7 @@ def crossover_array(loop: Loop) -> np.ndarray:
     w: np.ndarray = np.full_like(cand, np.nan, dtype=np.float64)
     rows, cols = np.nonzero(np.isfinite(cand))            # polish the real candidates only
     if rows.size:
-        sub = Loop(samples=rows.size, gain=k[rows], n=n[rows], d=d[rows],
-                   delay=loop.delay[rows], plant=loop.plant, controller=loop.controller,
-                   sensor=loop.sensor, prefilter=loop.prefilter)
+        sub = loop_rows(loop, rows)
         wp = _polish_magnitude(sub, cand[rows, cols][:, None])
         with np.errstate(all="ignore"):
             mag = np.abs(sub.open_loop(1j * wp))

@@ -218,3 +218,16 @@ def with_gains(loop: Loop, gains: np.ndarray) -> Loop:
     return Loop(samples=count, gain=g, n=rep(loop.n), d=rep(loop.d), delay=rep(loop.delay),
                 plant=rep_tf(loop.plant), controller=rep_tf(loop.controller),
                 sensor=rep_tf(loop.sensor), prefilter=rep_tf(loop.prefilter))
+
+
+def rows(loop: Loop, idx: np.ndarray | slice) -> Loop:
+    """The samples ``idx`` of ``loop`` (a sub-batch; blocks are indexed alike)."""
+
+    def tf(r: Rational) -> Rational:
+        return Rational(r.num[idx], r.den[idx], r.delay[idx])
+
+    gain = loop.gain[idx]
+    return Loop(samples=int(np.asarray(gain).shape[0]), gain=gain, n=loop.n[idx],
+                d=loop.d[idx], delay=loop.delay[idx], plant=tf(loop.plant),
+                controller=tf(loop.controller), sensor=tf(loop.sensor),
+                prefilter=tf(loop.prefilter))
