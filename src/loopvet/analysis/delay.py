@@ -79,8 +79,7 @@ class _Phase:
         """(psi_up, psi_down) at w, both non-decreasing; psi = up - down + const."""
         th = np.arctan((w[..., None] - self.b) / (-self.a)) if self.a.size else \
             np.zeros((*w.shape, 0))
-        contrib = th * (self.sign * -np.sign(self.a))   # every term now increasing
-        contrib = np.abs(contrib) * np.sign(contrib)
+        contrib = th * self.sign   # the term of psi: increasing where self.up, else decreasing
         up = np.where(self.up, contrib, 0.0).sum(axis=-1) + self.t * w
         down = -np.where(~self.up, contrib, 0.0).sum(axis=-1)
         return up, down
