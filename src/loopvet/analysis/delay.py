@@ -23,6 +23,7 @@ roots) only sets where the refinement begins; the guarantee does not depend on i
 of D or N on the imaginary axis make psi jump by pi; they split the frequency range.
 Each bracketed crossing is solved for psi(w) = level by Newton's method on psi safeguarded
 by bisection inside its bracket (psi is provably monotone there, so the root is unique).
+At most ``MAX_CROSSINGS`` + 1 crossings are kept per frequency segment.
 
 *Frequency bound.* For w > R = max |root| the ratio |D(jw)/N(jw)| is at least
 |d_n/n_m| w^(n-m) (1 - R/w)^n / (1 + R/w)^m, which increases with w; the search stops at
@@ -38,26 +39,34 @@ crossing was found past them (then they are reported up to K_B and flagged).
 
 *Counting.* The number of right-half-plane roots at K = 0+ and 0- is that of D plus, for
 roots of D on the axis, the side to which ds/dK = -N e^{-sT}/D' (simple roots) or the
-Puiseux expansion (multiple roots) sends them; walking the crossings in order of |K| on
-each side adds 2 (w > 0) or 1 (w = 0) in the crossing's direction.
+Puiseux expansion polished by Newton's method at a small gain (multiple roots, and simple
+ones whose first-order step runs along the axis) sends them; walking the crossings in
+order of |K| on each side adds 2 (w > 0) or 1 (w = 0) in the crossing's direction.
 
-Accuracy: each crossing is polished by Newton's method on D(jw) + K N(jw)e^{-jwT} = 0 in
-(w, K), to about 1e-12 relative.
+Accuracy: each bracket is solved to a relative step of 1e-15 or until psi(w) - level is at
+the rounding level of psi; crossings whose |D/N| there exceeds K_B by more than 1e-6
+(relative) are dropped; the others are polished by Newton's method on
+D(jw) + K N(jw)e^{-jwT} = 0 in (w, K), to about 1e-12 relative. A crossing whose polish
+does not converge keeps the solved w, K = +-|D(jw)/N(jw)| (sign from the level) and the
+direction of psi' there.
 
 Batching
 --------
 All samples are processed together: the roots of D and N come from one eigenvalue call
 per distinct degree; the phase terms are padded (samples, terms) arrays with a mask; the
-isolation works on one flat array of frequency intervals of every sample (with the sample
-and the frequency segment each belongs to), so a bisection round is one set of array
-operations for the whole batch; the brackets are solved together, and the Newton polish
-and the stable-interval walk run on flat arrays of crossings. The Python loops that remain
-run over rounds and iterations, not samples, except in two places: the right-half-plane
-count at K = 0+- of a sample with a multiple root of D on the imaginary axis (or a simple
-one whose first-order direction is tangent to the axis) is done per sample by the Puiseux
-expansion and Newton's method below, because those cases are rare and need a variable
-number of expansion terms; and :func:`delay_gain_intervals` builds its small result tuples
-per sample. Batches are cut into chunks of ``CHUNK`` samples to bound memory.
+isolation works on one flat array of frequency intervals of every sample, each carrying
+the frequency segment (and so the sample, offset and width) it belongs to, so a bisection
+round is one set of array operations for the whole batch; all brackets are solved
+together by a fixed loop of vectorised iterations over the ones not yet converged; the
+Newton polish, the start counts (Puiseux cases included) and the walk over the crossings
+run on flat arrays of crossings with an owner index. The Python loops that remain run over
+bisection rounds, solver iterations, frequency-bound doublings, root positions and
+multiplicities (start counts), distinct degrees (roots) and chunks, never over samples,
+except in :func:`delay_gain_intervals`, which builds its small per-sample result objects
+(tuples of :class:`~loopvet.analysis.gain.Crossing`) from the arrays: those are Python
+objects by nature. :func:`delay_crossing_arrays` returns the arrays themselves and
+:func:`delay_stability_margins` reads stability and gain margins from them without any
+per-sample loop. Batches are cut into chunks of ``CHUNK`` samples to bound memory.
 """
 
 from __future__ import annotations
@@ -73,7 +82,7 @@ from .gain import Crossing, GainIntervals, newton_crossings
 MAX_CROSSINGS = 4000
 CHUNK = 1024
 _AXIS_RTOL = 1e-9
-_GEO_POINTS = 40          # starting grid points per frequency segment (geometric)
+_GEO_POINTS = 24          # starting grid points per frequency segment (geometric)
 _ROUNDS = 60              # bisection rounds of the isolation (40 suffice: see _isolate)
 _SOLVE_BLOCK = 1 << 16   # brackets solved together
 _SOLVE_STEPS = 100        # safeguarded Newton steps per bracket (bisection alone needs < 80)
@@ -143,8 +152,8 @@ class _Terms:
         return up, down
 
     def psi(self, own: np.ndarray, w: np.ndarray) -> np.ndarray:
-        up, down = self.parts(own, w)
-        return up - down
+        """psi_up - psi_down."""
+        return (self.atan(own, w) * self.g[own]).sum(axis=1) + self.t[own] * w
 
     def slope(self, own: np.ndarray, w: np.ndarray) -> np.ndarray:
         """psi'(w)."""
@@ -320,12 +329,14 @@ def _solve_levels(tm: _Terms, own: np.ndarray, wa: np.ndarray, wb: np.ndarray,
     dx = hi - lo
     dx_old = dx.copy()
     act = np.nonzero((ga != 0) & (gb != 0))[0]
+    # rounding level of psi + off - target: its terms are below T w + (number of terms) pi/2
+    span = (tm.vu + tm.vd).sum(axis=1) * (math.pi / 2)
+    noise_0 = 8 * np.finfo(float).eps * (span[own] + np.abs(off) + np.abs(target) + 1.0)
     for _ in range(_SOLVE_STEPS):
         if act.size == 0:
             break
         xs, o = x[act], own[act]
-        up, down = tm.parts(o, xs)
-        g = sgn[act] * (up - down + off[act] - target[act])
+        g = sgn[act] * (tm.psi(o, xs) + off[act] - target[act])
         gp = sgn[act] * tm.slope(o, xs)
         lo_a = np.where(g < 0, xs, lo[act])
         hi_a = np.where(g > 0, xs, hi[act])
@@ -335,8 +346,7 @@ def _solve_levels(tm: _Terms, own: np.ndarray, wa: np.ndarray, wb: np.ndarray,
         use = (newton >= lo_a) & (newton <= hi_a) & \
             (np.abs(2.0 * step) <= np.abs(dx_old[act]))
         xn = np.where(use, newton, 0.5 * (lo_a + hi_a))
-        noise = 8 * np.finfo(float).eps * (np.abs(up) + np.abs(down) + np.abs(off[act])
-                                            + np.abs(target[act]) + 1.0)
+        noise = noise_0[act] + 8 * np.finfo(float).eps * tm.t[o] * np.abs(xs)
         done = (np.abs(g) <= noise) | (np.abs(xn - xs) <= 1e-15 * np.abs(xs))
         xn = np.where(done & (np.abs(g) <= noise), xs, xn)
         dx_old[act] = dx[act]
@@ -516,6 +526,9 @@ def _chunk(n: np.ndarray, d: np.ndarray, t: np.ndarray, goi: np.ndarray) -> Dela
         lv1 = np.concatenate([lv1, lv2])
         und = und + und2
     k_b = np.where(np.isfinite(w_end), k_b, np.minimum(k_b, lead))
+    # crossings clearly beyond K_B (|D/N| at the bracketed w) need no polish
+    near = _gain_ratio(n, d, own1, ws1) <= k_b[own1] * (1 + 1e-6)
+    own1, ws1, lv1 = own1[near], ws1[near], lv1[near]
     # polish every crossing on the quasi-polynomial itself
     wp, kp, okp = newton_crossings(n[own1], d[own1], t[own1], ws1[:, None])
     wp, kp, okp = wp[:, 0], kp[:, 0], okp[:, 0]
@@ -734,7 +747,8 @@ def delay_stability_margins(arrays: DelayCrossings, k: np.ndarray | float,
     The semantics of :func:`loopvet.analysis.gain.gain_margins` on the stable interval
     holding k, vectorised: NaN margins where k is in no stable interval; "rise" and "fall"
     refer to |K| (for K < 0 the margin to rise is to the more negative end); a side that
-    reaches 0 or beyond, or is unbounded, gives inf.
+    reaches 0 or beyond, or is unbounded, gives inf. ``k`` is a scalar or (S,). At k = 0
+    inside a stable interval both margins are inf (where gain_margins divides by zero).
     """
     kk = np.broadcast_to(np.asarray(k, dtype=np.float64).reshape(-1), (arrays.samples,))
     lo_all, hi_all = arrays.stable_lo, arrays.stable_hi
@@ -763,15 +777,17 @@ def delay_gain_intervals(n: np.ndarray, d: np.ndarray, delay: np.ndarray,
     numerics are those of :func:`delay_crossing_arrays`, this only builds the tuples.
     """
     arr = delay_crossing_arrays(n, d, delay, gains_of_interest)
+    used = np.arange(arr.gain.shape[1]) < arr.count[:, None]
+    gains, freqs = arr.gain[used].tolist(), arr.frequency[used].tolist()
+    ends = np.cumsum(arr.count).tolist()
+    iv = ~np.isnan(arr.stable_lo)
+    los, his = arr.stable_lo[iv].tolist(), arr.stable_hi[iv].tolist()
+    iv_ends = np.cumsum(iv.sum(axis=1)).tolist()
     out = []
-    for i in range(arr.samples):
-        m = int(arr.count[i])
-        crossings = tuple(Crossing(gain=g, frequency=w) for g, w in
-                          zip(arr.gain[i, :m].tolist(), arr.frequency[i, :m].tolist(),
-                              strict=True))
-        ok = ~np.isnan(arr.stable_lo[i])
-        stable = tuple(zip(arr.stable_lo[i, ok].tolist(), arr.stable_hi[i, ok].tolist(),
-                           strict=True))
-        out.append(GainIntervals(crossings=crossings, stable=stable,
-                                 search_bound=float(arr.search_bound[i])))
+    start = iv_start = 0
+    for end, iv_end, kb in zip(ends, iv_ends, arr.search_bound.tolist(), strict=True):
+        crossings = tuple(map(Crossing, gains[start:end], freqs[start:end]))
+        stable = tuple(zip(los[iv_start:iv_end], his[iv_start:iv_end], strict=True))
+        out.append(GainIntervals(crossings=crossings, stable=stable, search_bound=kb))
+        start, iv_start = end, iv_end
     return out
