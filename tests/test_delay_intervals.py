@@ -136,3 +136,44 @@ def test_batched_samples_are_independent():
     res = delay_gain_intervals(n, d, np.array([2.0, 3.0]), np.array([[1.0], [1.0]]))
     one = delay_gain_intervals(n, d[1:], np.array([3.0]), np.array([[1.0]]))[0]
     assert res[1].stable == one.stable
+
+
+# Open-loop poles and zeros in the right half-plane: their phase terms decrease (poles) or
+# increase (zeros) psi, the opposite of their left-half-plane counterparts.
+RHP_LOOPS = {
+    # name: (N ascending, D ascending, delay)
+    "rhp-zero": ([1.0, -1.0], [1.0, 3.0, 1.0], 0.3),
+    "integrator-rhp-zero": ([1.0, -0.5], [0.0, 1.0, 1.0], 0.4),
+    "rhp-pair": ([1.0], [1.0, -0.2, 1.0], 0.2),
+    "rhp-pole-and-lhp-zero": ([2.0, 1.0], [-1.0, 0.5, 1.0], 0.3),
+}
+
+
+@pytest.mark.parametrize("name", sorted(RHP_LOOPS))
+def test_right_half_plane_poles_and_zeros(name):
+    """Every interval against the argument principle, every crossing against mpmath."""
+    n, d, t = (np.asarray(x, dtype=float) if i < 2 else x
+               for i, x in enumerate(RHP_LOOPS[name]))
+    res = delay_gain_intervals(n[None], d[None], np.array([t]), np.array([[1.0]]))[0]
+    edges = sorted({c.gain for c in res.crossings if abs(c.gain) < 60})
+    tests = [edges[0] - 1.0] + [0.5 * (a + b) for a, b in zip(edges[:-1], edges[1:],
+                                                                strict=True)] + [edges[-1] + 0.5]
+    for k in tests:
+        if abs(k) < 1e-9:
+            continue
+        inside = any(lo < k < hi for lo, hi in res.stable)
+        assert inside == (rhp_count(n, d, t, k) == 0), (name, k, res.stable)
+    mpmath.mp.dps = 30
+    for c in res.crossings:
+        if c.frequency == 0 or c.gain == 0:
+            continue
+
+        def f(w, k):
+            s = 1j * w
+            val = sum(mpmath.mpf(x) * s**i for i, x in enumerate(d)) + k * sum(
+                mpmath.mpf(x) * s**i for i, x in enumerate(n)) * mpmath.exp(-s * t)
+            return [mpmath.re(val), mpmath.im(val)]
+
+        w_ref, k_ref = mpmath.findroot(f, (mpmath.mpf(c.frequency), mpmath.mpf(c.gain)))
+        assert c.frequency == pytest.approx(float(w_ref), rel=1e-9), (name, c)
+        assert c.gain == pytest.approx(float(k_ref), rel=1e-9), (name, c)
