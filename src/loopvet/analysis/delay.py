@@ -77,7 +77,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..lti import poly
-from .gain import Crossing, GainIntervals, newton_crossings
+from .gain import Crossing, GainIntervals, interval_margins, newton_crossings
 
 MAX_CROSSINGS = 4000
 CHUNK = 1024
@@ -759,13 +759,8 @@ def delay_stability_margins(arrays: DelayCrossings, k: np.ndarray | float,
     rows = np.arange(kk.size)
     lo = lo_all[rows, j] if inside.shape[1] else np.full(kk.size, np.nan)
     hi = hi_all[rows, j] if inside.shape[1] else np.full(kk.size, np.nan)
-    lo, hi = np.where(kk > 0, lo, -hi), np.where(kk > 0, hi, -lo)
-    mag = np.abs(kk)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        rise = np.where(np.isinf(hi), np.inf, 20.0 * np.log10(hi / mag))
-        fall = np.where(lo <= 0, np.inf, 20.0 * np.log10(mag / lo))
-    return np.asarray(stable, dtype=bool), np.where(stable, rise, np.nan), \
-        np.where(stable, fall, np.nan)
+    rise, fall = interval_margins(lo, hi, kk, np.asarray(stable, dtype=bool))
+    return np.asarray(stable, dtype=bool), rise, fall
 
 
 def delay_gain_intervals(n: np.ndarray, d: np.ndarray, delay: np.ndarray,

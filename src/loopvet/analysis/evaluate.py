@@ -18,8 +18,8 @@ from ..lti.loop import ClosedLoopMap, Loop
 from ..lti.loop import rows as loop_rows
 from ..metrics import METRICS
 from . import frequency as fq
-from .delay import delay_gain_intervals
-from .gain import GainIntervals, crossing_arrays, gain_margins, margins_at, stable_gain_intervals
+from .delay import delay_crossing_arrays, delay_stability_margins
+from .gain import GainIntervals, crossing_arrays, gain_margins, margins_at
 from .poles import closed_loop_poles, is_stable, pole_metrics
 from .time import StepResponse, disturbance_metrics, step_metrics, step_response
 
@@ -62,12 +62,6 @@ class Evaluation:
                 zip(self.crossover_w[i][keep], self.crossover_lag[i][keep], strict=True)]
 
 
-def intervals_of(loop: Loop, gains_of_interest: np.ndarray) -> list[GainIntervals]:
-    if loop.has_delay:
-        return delay_gain_intervals(loop.n, loop.d, loop.delay, gains_of_interest)
-    return stable_gain_intervals(loop.n, loop.d)
-
-
 def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
              gains_of_interest: np.ndarray | None = None, time: bool = True,
              intervals: list[GainIntervals] | None = None,
@@ -76,18 +70,15 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
 
     ``keys``: the metrics wanted (default: every metric of the requirement table); only
     what they need is computed, so a sweep pays for its swept requirements only. Stability
-    comes from ``intervals`` when given, from the exact dead-time analysis for loops with
-    dead time, and otherwise from the closed-loop poles (no gain interval classification:
-    the gain margins use the nearest crossing gains, see :func:`gain.margins_at`).
+    comes from ``intervals`` when given, else per sample from the batched exact dead-time
+    analysis (samples with dead time) or from the closed-loop poles (delay-free samples; the
+    gain margins then use the nearest crossing gains, see :func:`gain.margins_at`).
     Every step is vectorised over the samples.
     """
     s = loop.samples
     want = set(ALL_KEYS if keys is None else keys)
     ps = closed_loop_poles(loop, order=pade)
     out: dict[str, np.ndarray] = {}
-    if intervals is None and loop.has_delay:
-        goi = gains_of_interest if gains_of_interest is not None else loop.gain[:, None]
-        intervals = intervals_of(loop, goi)
     if intervals is not None:
         stable = np.array([iv.interval_containing(float(k)) is not None
                            for iv, k in zip(intervals, loop.gain, strict=True)], dtype=bool)
@@ -97,11 +88,10 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
             out["gain_margin_db"] = _num(gm[:, 0])
             out["gain_reduction_margin_db"] = _num(gm[:, 1])
     else:
-        stable = is_stable(ps.poles)
+        goi = gains_of_interest if gains_of_interest is not None else loop.gain[:, None]
+        stable, rise, fall = _stability(loop, ps.poles, goi, bool(want & set(GAIN_KEYS)))
         if want & set(GAIN_KEYS):
-            gains, _ = crossing_arrays(loop.n, loop.d)
-            out["gain_margin_db"], out["gain_reduction_margin_db"] = margins_at(
-                gains, loop.gain, stable)
+            out["gain_margin_db"], out["gain_reduction_margin_db"] = rise, fall
     out |= pole_metrics(ps.poles)
     unstable = ~stable
     freq_keys = want & set(FREQUENCY_KEYS)
@@ -133,6 +123,29 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
     return Evaluation(metrics=out, stable=stable, intervals=intervals, crossover_w=cross_w,
                       crossover_lag=cross_lag, poles=ps.poles, pade_order=ps.pade_order,
                       reference=ref, load=load, grid=grid)
+
+
+def _stability(loop: Loop, poles: np.ndarray, goi: np.ndarray, margins: bool
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(stable, gain_margin_db, gain_reduction_margin_db) per sample without building
+    per-sample interval objects: delay-free samples from the closed-loop poles and the
+    nearest crossing gains, samples with dead time from the batched exact analysis."""
+    s = loop.samples
+    stable = np.zeros(s, dtype=bool)
+    rise = np.full(s, np.nan)
+    fall = np.full(s, np.nan)
+    dead = loop.delay > 0
+    free = np.nonzero(~dead)[0]
+    if free.size:
+        stable[free] = is_stable(poles[free])
+        if margins:
+            gains, _ = crossing_arrays(loop.n[free], loop.d[free])
+            rise[free], fall[free] = margins_at(gains, loop.gain[free], stable[free])
+    idx = np.nonzero(dead)[0]
+    if idx.size:
+        arrays = delay_crossing_arrays(loop.n[idx], loop.d[idx], loop.delay[idx], goi[idx])
+        stable[idx], rise[idx], fall[idx] = delay_stability_margins(arrays, loop.gain[idx])
+    return stable, rise, fall
 
 
 #: samples per block of the peak search for loops with dead time, whose frequency sets

@@ -22,21 +22,25 @@ Ms = sup |S|, Mt = sup |T|, max |K C S| are found on each sample's own frequency
 hundredth of the smallest to a hundred times the largest root magnitude of D, N (Fujiwara
 bounds from the coefficients) and the closed-loop poles, 9 points across every lightly
 damped closed-loop pole (at b + k|a|/2, k = -4..4, for a pole a + jb with |a| < |b|: the
-resonance it causes is about |a| wide, and the grid there is within 3 % of its top), and for
-dead time a linear grid with spacing pi/(16 T) up to the frequency beyond which |L| < 1e-3
-(the ripple of period 2 pi/T is sampled 32 times a period), together with the crossovers.
-Magnitudes are evaluated in real arithmetic (even and odd parts at s = jw). The largest
-local maximum of the grid, and the second when its grid value is at least SECOND_PEAK = 0.8
-of the largest (a grid that is within a few per cent of every peak top cannot let a lower
-one win), are refined by nested grids in log w (17 points, 7 rounds, each 8 times
-narrower), which puts the peak value within about 1e-14 relative (the peak is flat at the
-top); the value as w -> infinity is included. This brackets every peak that is wider than
-the grid spacing; a narrower one needs a closed-loop pole near the axis, around which the
-grid is refined explicitly.
+resonance it causes is about |a| wide, and the grid there is within 3 % of its top), and
+the crossovers. With dead time the map P e^{-s tau}/(A + B e^{-sT}) ripples with period
+2 pi/T; |P|/(|A| - |B|) bounds it whatever the phase of the delay term, so a linear grid of
+RIPPLE_POINTS = 32 points per period is laid from 0 up to 1.25 times the highest grid
+frequency at which that bound still reaches the best value found (or up to where
+|B/A| < 1e-3 when the bound never falls), at most RIPPLE_MAX points. Magnitudes are
+evaluated in real arithmetic (even and odd parts at s = jw). The largest local maximum,
+and the second when its grid value is at least SECOND_PEAK = 0.8 of the largest (a grid
+within a few per cent of every peak top cannot let a lower one win), are refined by nested
+grids in log w (17 points, 7 rounds, each 8 times narrower), which puts the peak value
+within about 1e-14 relative (the peak is flat at the top); the values at w = 0 and as
+w -> infinity are included (Mt of an integrating loop has its supremum 1 at w = 0). This
+brackets every peak wider than the grid spacing; a narrower one needs a closed-loop pole
+near the axis, around which the grid is refined explicitly.
 
 ``bandwidth`` is the first frequency at which |T_ref(jw)| falls to |T_ref(0)|/sqrt(2) (the
-reference-to-output map, prefilter included), narrowed by nested grids to about 1e-15
-relative; inf if it never does, null if T_ref(0) = 0.
+reference-to-output map, prefilter included; with dead time the ripple grid reaches the
+first grid point below that level), narrowed by nested grids to about 1e-15 relative; inf
+if it never does, null if T_ref(0) = 0.
 
 Batching: every function here takes the whole batch; padded (S, M) arrays carry the
 ragged parts (crossovers per sample) with NaN, and no Python loop runs over samples.
@@ -227,7 +231,8 @@ def sample_grid(loop: Loop, extra: np.ndarray, char_roots: np.ndarray,
 
     ``extra`` (S, M): frequencies that must be on the grid (crossovers), NaN-padded;
     ``char_roots`` (S, n): closed-loop poles (NaN allowed). Rows are padded by repeating
-    their last point, so all rows have the same length.
+    their last point, so all rows have the same length. The dead-time ripple is sampled
+    later, where it matters (:func:`_with_ripple`).
     """
     s_count = loop.samples
     ex = np.where(np.isfinite(extra) & (extra > 0), extra, np.nan)
@@ -252,36 +257,72 @@ def sample_grid(loop: Loop, extra: np.ndarray, char_roots: np.ndarray,
         width = np.maximum(np.abs(cr.real), 1e-9 * np.abs(cr.imag))
         res = np.abs(cr.imag)[:, :, None] + width[:, :, None] * RESONANCE_OFFSETS
         parts.append(np.where(light[:, :, None], res, np.nan).reshape(s_count, -1))
-    if np.any(t > 0):
-        w_tail = _magnitude_below(loop, 1e-3, hi)
-        step = np.where(t > 0, math.pi / (16.0 * np.where(t > 0, t, 1.0)), np.inf)
-        need = np.where(t > 0, np.ceil(w_tail / step), 0.0)
-        n_lin = int(min(need.max(), 40000))
-        if n_lin > 0:
-            top = np.where(t > 0, np.minimum(w_tail, n_lin * step), np.nan)
-            parts.append(top[:, None] * np.arange(1, n_lin + 1)[None, :] / n_lin)
     parts.append(ex)
+    return _merge(parts)
+
+
+def _merge(parts: list[np.ndarray]) -> np.ndarray:
+    """Rows of the concatenated point sets, ascending, without non-positive or NaN points;
+    short rows padded by repeating their last point."""
     grid = np.concatenate(parts, axis=1)
     grid = np.where(grid > 0, grid, np.nan)
     grid = np.sort(grid, axis=1)                          # NaN last
     valid = np.isfinite(grid)
     last = np.maximum(valid.sum(axis=1) - 1, 0)
-    fill = grid[np.arange(s_count), last]
+    fill = grid[np.arange(grid.shape[0]), last]
     grid = np.where(valid, grid, fill[:, None])
     width = int(valid.sum(axis=1).max(initial=1))
     return grid[:, :max(width, 1)]
 
 
-def _magnitude_below(loop: Loop, level: float, start: np.ndarray) -> np.ndarray:
-    """Per sample, a frequency beyond which |L| < level (a doubling search that checks
-    w, 2w, 4w), at most 1e12."""
+#: points per period 2 pi/T of the dead-time ripple, and the most ripple points per sample
+RIPPLE_POINTS = 32
+RIPPLE_MAX = 40_000
+
+
+def _with_ripple(m: ClosedLoopMap, g2: np.ndarray, upto: np.ndarray) -> np.ndarray:
+    """``g2`` plus, for samples with dead time, a linear grid of RIPPLE_POINTS points per
+    ripple period from 0 up to ``upto`` (per sample; NaN: none), at most RIPPLE_MAX."""
+    t = m.delay
+    need = (t > 0) & np.isfinite(upto) & (upto > 0)
+    if not need.any():
+        return g2
+    step = np.where(need, 2.0 * math.pi / (RIPPLE_POINTS * np.where(t > 0, t, 1.0)), np.inf)
+    count = np.where(need, np.ceil(np.where(need, upto, 0.0) / step), 0.0)
+    n_lin = int(min(count.max(), RIPPLE_MAX))
+    if n_lin <= 0:
+        return g2
+    top = np.where(need, np.minimum(upto, n_lin * step), np.nan)
+    return _merge([g2, top[:, None] * np.arange(1, n_lin + 1)[None, :] / n_lin])
+
+
+def _ripple_reach(m: ClosedLoopMap, g2: np.ndarray, best: np.ndarray) -> np.ndarray:
+    """Per sample, how far the ripple grid must reach for a peak search: the largest grid
+    frequency (times 1.25) where the delay-free envelope |P|/(|A| - |B|), which bounds |m|
+    whatever the phase of the delay term, is not below the best value found so far; where
+    the envelope never falls (|B| >= |A| at the top of the grid), the frequency beyond which
+    |B/A| < 1e-3, doubling from the top of the grid, at most 1e12."""
+    with np.errstate(all="ignore"):
+        env = m.envelope(g2)
+    above = np.where(np.isnan(env), True, env >= best[:, None] * (1.0 - 1e-12))
+    last = g2.shape[1] - 1 - np.argmax(above[:, ::-1], axis=1)
+    reach = np.where(above.any(axis=1), 1.25 * g2[np.arange(g2.shape[0]), last], np.nan)
+    open_top = above[:, -1]
+    if open_top.any():
+        reach = np.where(open_top, _tail(m, g2[:, -1]), reach)
+    return reach
+
+
+def _tail(m: ClosedLoopMap, start: np.ndarray) -> np.ndarray:
+    """Per sample, a frequency beyond which |B/A| < 1e-3 (checked at w, 2w, 4w while
+    doubling), at most 1e12."""
     w = np.maximum(np.asarray(start, dtype=np.float64), 1e-12)
     done = np.zeros(w.shape, dtype=bool)
     for _ in range(80):
         pts = w[:, None] * np.array([1.0, 2.0, 4.0])[None, :]
         with np.errstate(all="ignore"):
-            mag = np.abs(loop.open_loop(1j * pts))
-        done |= np.all(mag < level, axis=1) | (w > 1e12)
+            ratio = m.loop_ratio(pts)
+        done |= np.all(ratio < 1e-3, axis=1) | (w > 1e12)
         if done.all():
             break
         w = np.where(done, w, 2.0 * w)
@@ -317,6 +358,8 @@ def peak(m: ClosedLoopMap, grid: np.ndarray) -> np.ndarray:
     """
     s_count = m.p.shape[0]
     g2 = _grid_2d(grid, s_count)
+    if np.any(m.delay > 0):
+        g2 = _with_ripple(m, g2, _ripple_reach(m, g2, _mag(m, g2).max(axis=1)))
     g = g2.shape[1]
     best = np.empty(s_count)
     rows_l, a_l, b_l = [], [], []
@@ -346,7 +389,9 @@ def peak(m: ClosedLoopMap, grid: np.ndarray) -> np.ndarray:
         rows = np.concatenate(rows_l)
         refined = _refine_max(_rows(m, rows), np.concatenate(a_l), np.concatenate(b_l))
         np.maximum.at(best, rows, refined)
-    far = _mag(m, g2[:, -1:] * 1e6)[:, 0]
+    far = _mag(m, g2[:, -1:] * 1e6)[:, 0]             # w -> infinity
+    zero = _mag(m, np.zeros((s_count, 1)))[:, 0]        # w = 0 (the supremum may sit there)
+    best = np.maximum(best, np.where(np.isfinite(zero), zero, 0.0))
     return np.maximum(best, np.where(np.isfinite(far), far, 0.0))
 
 
@@ -390,6 +435,10 @@ def bandwidth(m: ClosedLoopMap, grid: np.ndarray) -> np.ndarray:
     with np.errstate(all="ignore"):
         dc = np.abs(m.at(np.zeros((s_count, 1), dtype=np.complex128)))[:, 0]
     level = dc / math.sqrt(2.0)
+    if np.any(m.delay > 0):                       # the ripple up to the first grid point below
+        below = _mag(m, g2) <= level[:, None]
+        j = np.where(below.any(axis=1), np.argmax(below, axis=1), g2.shape[1] - 1)
+        g2 = _with_ripple(m, g2, g2[np.arange(s_count), j])
     first = np.full(s_count, -1)
     for blk in _blocks(s_count, g2.shape[1]):
         below = _mag(_rows(m, np.arange(s_count)[blk]), g2[blk]) <= level[blk, None]

@@ -79,8 +79,18 @@ def closed_loop_poles(loop: Loop, gain: np.ndarray | float | None = None,
     """
     if loop.has_delay:
         n = pade_order(loop, order)
-        return PoleSet(poles=poly.roots(poly.trim_common(loop.characteristic_pade(n, gain))),
-                       pade_order=n)
+        char = loop.characteristic_pade(n, gain)
+        dead = loop.delay > 0
+        if dead.all():
+            return PoleSet(poles=poly.roots(poly.trim_common(char)), pade_order=n)
+        # a sweep may reach zero dead time on some samples: those keep their exact poles,
+        # padded with NaN (absent) to the batch's width
+        free = poly.roots(poly.trim_common(loop.characteristic(gain)[~dead]))
+        with_pade = poly.roots(poly.trim_common(char[dead]))
+        out = np.full((loop.samples, max(free.shape[1], with_pade.shape[1])), np.nan + 0j)
+        out[np.nonzero(~dead)[0], : free.shape[1]] = free
+        out[np.nonzero(dead)[0], : with_pade.shape[1]] = with_pade
+        return PoleSet(poles=out, pade_order=n)
     return PoleSet(poles=poly.roots(poly.trim_common(loop.characteristic(gain))),
                    pade_order=None)
 
@@ -90,19 +100,23 @@ def is_stable(poles: np.ndarray) -> np.ndarray:
     if poles.shape[1] == 0:
         return np.ones(poles.shape[0], dtype=bool)
     margin = -STABILITY_RTOL * np.maximum(1.0, np.abs(poles))
-    return np.all(poles.real < margin, axis=1)
+    with np.errstate(invalid="ignore"):
+        return np.all((poles.real < margin) | np.isnan(poles.real), axis=1)
 
 
 def pole_metrics(poles: np.ndarray) -> dict[str, np.ndarray]:
     """``damping_ratio`` (min -Re p/|p|), ``decay_rate`` (min -Re p), ``natural_frequency``
-    (max |p|) per sample. A pole at the origin has damping ratio taken as 0 (integrating
+    (max |p|) per sample; NaN entries are padding (no pole). A pole at the origin has
+    damping ratio taken as 0 (integrating
     mode) for a closed loop; an empty pole set gives inf/inf/0."""
     if poles.shape[1] == 0:
         s = poles.shape[0]
         return {"damping_ratio": np.full(s, np.inf), "decay_rate": np.full(s, np.inf),
                 "natural_frequency": np.zeros(s)}
     mag = np.abs(poles)
+    absent = np.isnan(mag)                       # padding of a ragged batch
     with np.errstate(invalid="ignore", divide="ignore"):
         zeta = np.where(mag > 0, -poles.real / np.where(mag > 0, mag, 1.0), 0.0)
-    return {"damping_ratio": zeta.min(axis=1), "decay_rate": (-poles.real).min(axis=1),
-            "natural_frequency": mag.max(axis=1)}
+    return {"damping_ratio": np.where(absent, np.inf, zeta).min(axis=1),
+            "decay_rate": np.where(absent, np.inf, -poles.real).min(axis=1),
+            "natural_frequency": np.where(absent, 0.0, mag).max(axis=1)}

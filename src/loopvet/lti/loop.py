@@ -59,6 +59,21 @@ class ClosedLoopMap:
             ar, ai = ar + br, ai + bi
         return np.sqrt((pr * pr + pi * pi) / (ar * ar + ai * ai))
 
+    def envelope(self, w: np.ndarray) -> np.ndarray:
+        """|P| / (|A| - |B|) at s = jw: an upper bound of |m(jw)| whatever the phase of the
+        delay term; inf where |B| >= |A|."""
+        pr, pi = poly.on_axis(self.p, w)
+        ar, ai = poly.on_axis(self.a, w)
+        br, bi = poly.on_axis(self.b, w)
+        gap = np.hypot(ar, ai) - np.hypot(br, bi)
+        return np.where(gap > 0, np.hypot(pr, pi) / np.where(gap > 0, gap, 1.0), np.inf)
+
+    def loop_ratio(self, w: np.ndarray) -> np.ndarray:
+        """|B/A| at s = jw (the loop gain magnitude for these maps)."""
+        ar, ai = poly.on_axis(self.a, w)
+        br, bi = poly.on_axis(self.b, w)
+        return np.hypot(br, bi) / np.hypot(ar, ai)
+
 
 @dataclass(frozen=True, slots=True)
 class Loop:
