@@ -288,9 +288,10 @@ def parse_store(path: str, text: str) -> Store:
     if not isinstance(doc, dict):
         raise BaselineError(path, [f"expected a JSON object at the top, got {_kind(doc)}"])
     if doc.get("kind") != KIND:
-        hint = (" (this looks like a results.json; the baseline is written by "
-                "'loopvet approve')" if "summary" in doc else "")
-        raise BaselineError(path, [f"'kind' must be 'baseline', got {doc.get('kind')!r}{hint}"])
+        if "summary" in doc:
+            raise BaselineError(path, ["this looks like a results.json, not a baseline "
+                                       "(baselines are written by 'loopvet approve')"])
+        raise BaselineError(path, [f"'kind' must be 'baseline', got {doc.get('kind')!r}"])
     if doc.get("loopvet") != FORMAT:
         raise BaselineError(path, [f"baseline format version {doc.get('loopvet')!r} is not "
                                    f"known; this loopvet reads version {FORMAT}"])

@@ -93,7 +93,9 @@ def to_json(diffs: Sequence[RecordDiff], old: str, new: str, unchanged: int) -> 
                         "unchanged": unchanged}}
 
 
-_MD_SPECIAL = str.maketrans({c: "\\" + c for c in "\\`*_[]{}()#+!|~>"}
+#: every line we write starts with our own marker ('- ', '| ', '#'), so record text only
+#: ever sits inside a line: escaping inline syntax, table pipes and HTML is enough
+_MD_SPECIAL = str.maketrans({c: "\\" + c for c in "\\`*_[]|~"}
                             | {"<": "&lt;", "&": "&amp;", "\n": " ", "\r": " "})
 
 
@@ -119,7 +121,8 @@ def markdown(diffs: Sequence[RecordDiff], old: str, new: str, unchanged: int) ->
                                                     else value(c.delta))
                 verdict = _WORDS[c.verdict]
                 verdict = f"**{verdict.lower()}**" if c.verdict == "degraded" else verdict
-                lines.append(f"| {md(c.label)} | {md(value(c.old))} | {md(value(c.new))} | "
+                label = f"`{c.key}`{md(c.label[len(c.key):])}"      # keys are ours
+                lines.append(f"| {label} | {md(value(c.old))} | {md(value(c.new))} | "
                              f"{md(delta)} | {verdict} |")
             lines.append("")
         lines += [f"- {md(v.message)}" for v in d.verdicts]
