@@ -55,7 +55,7 @@ def show(value: Any) -> str:
     if isinstance(value, int):
         return str(value)
     if isinstance(value, float):
-        return f"{value:.10g}"
+        return repr(value)
     if isinstance(value, list):
         return "[" + ", ".join(show(v) for v in value) + "]"
     if isinstance(value, dict):
@@ -91,6 +91,9 @@ def _change(path: list[str], kind: Kind, old: Any, new: Any) -> Change:
         message = f"{name} added: {show(new)}"
     elif kind == "removed":
         message = f"{name} removed (was {show(old)})"
+    elif isinstance(old, str) and isinstance(new, str) and (
+            "\n" in old + new or max(len(old), len(new)) > _SHOW_CHARS):
+        message = f"{name} edited (free text)"
     else:
         message = f"{name}: {show(old)} -> {show(new)}"
     return Change(key=".".join(str(p) for p in path), kind=kind, old=old, new=new,

@@ -13,7 +13,7 @@ from typing import Any
 from ..diff import RecordDiff
 from ..drift import MetricChange
 
-_WORDS = {"improved": "better", "degraded": "WORSE", "changed": "changed",
+_WORDS = {"improved": "better", "degraded": "WORSE", "changed": "changed, no requirement",
           "unchanged": "within tolerance"}
 
 
