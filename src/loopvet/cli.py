@@ -94,7 +94,9 @@ def build_parser() -> argparse.ArgumentParser:
     diff = sub.add_parser("diff", help="record changes and the result changes they cause",
                           description="Compare two record files (OLD NEW), the working tree "
                                       "with a git revision (--rev), or with the records "
-                                      "stored in the approved baseline (--approved).")
+                                      "stored in the approved baseline (--approved).",
+                          epilog="exit codes: 0 shown (whatever changed), 2 usage error, or "
+                                 "an unusable baseline, revision or file")
     diff.add_argument("paths", nargs="*", metavar="PATH",
                       help="OLD NEW files, or records/folders for --rev and --approved "
                            "(default designs/)")
