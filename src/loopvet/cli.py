@@ -7,6 +7,7 @@ Exit codes of ``loopvet check`` (results-format v1):
   3  at least one record invalid (the others are still checked and reported)
   4  all requirements met, but a metric degraded beyond tolerance against the approved
      baseline, or a record's content changed without a revision bump
+A baseline file that is named but missing, or is corrupt, stops the run with code 2.
 """
 
 from __future__ import annotations
@@ -24,6 +25,7 @@ if TYPE_CHECKING:
     from .run import Settings
 
 EXIT_CODES = __doc__.split("loopvet check`` (results-format v1):\n", 1)[1] if __doc__ else ""
+BASELINE = os.path.join("reports", "baseline.json")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -63,6 +65,50 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--cluster", metavar="ADDRESS", default=None,
                        help="run on a dask.distributed scheduler, e.g. tcp://127.0.0.1:8786 "
                             "(needs the extra loopvet[cluster])")
+    check.add_argument("--baseline", metavar="PATH", default=None,
+                       help=f"approved baseline to report drift against (default {BASELINE}, "
+                            "used when it exists)")
+    check.add_argument("--no-baseline", action="store_true",
+                       help="do not compare with any baseline")
+    approve = sub.add_parser("approve", help="record current results as the approved baseline",
+                             formatter_class=argparse.RawDescriptionHelpFormatter,
+                             epilog="exit codes: 0 written (or already up to date), 1 failing "
+                                    "records\nwithout --accept-failing, 2 usage or unusable "
+                                    "baseline file,\n3 invalid records; nothing is written "
+                                    "unless the code is 0")
+    approve.add_argument("paths", nargs="*", default=["designs"], metavar="PATH",
+                         help="records or folders to approve (default designs/); approved "
+                              "records missing from these paths are dropped")
+    approve.add_argument("--baseline", metavar="PATH", default=BASELINE,
+                         help=f"baseline file (default {BASELINE})")
+    approve.add_argument("--by", metavar="NAME", help="approver (default: git user.name, "
+                         "else the login name)")
+    approve.add_argument("--note", metavar="TEXT", default="", help="note stored with the "
+                         "records approved now")
+    approve.add_argument("--accept-failing", action="store_true",
+                         help="approve records that fail requirements (recorded as such)")
+    approve.add_argument("--discard-corrupt", action="store_true",
+                         help="start afresh when the baseline file is unusable")
+    approve.add_argument("--jobs", type=_positive, default=os.cpu_count() or 1, metavar="N",
+                         help="records checked in parallel processes")
+    diff = sub.add_parser("diff", help="record changes and the result changes they cause",
+                          description="Compare two record files (OLD NEW), the working tree "
+                                      "with a git revision (--rev), or with the records "
+                                      "stored in the approved baseline (--approved).",
+                          epilog="exit codes: 0 shown (whatever changed), 2 usage error, or "
+                                 "an unusable baseline, revision or file")
+    diff.add_argument("paths", nargs="*", metavar="PATH",
+                      help="OLD NEW files, or records/folders for --rev and --approved "
+                           "(default designs/)")
+    which = diff.add_mutually_exclusive_group()
+    which.add_argument("--rev", metavar="REV", help="git revision to compare with "
+                       "(read with git show)")
+    which.add_argument("--approved", action="store_true",
+                       help="compare with the records stored in the baseline")
+    diff.add_argument("--baseline", metavar="PATH", default=BASELINE,
+                      help=f"baseline file for --approved (default {BASELINE})")
+    diff.add_argument("--format", choices=("text", "json", "markdown"), default="text",
+                      help="text for people, json, or markdown for a pull-request comment")
     show = sub.add_parser("show", help="print a readable analysis of one record")
     show.add_argument("record", metavar="RECORD", help="one record file")
     sub.add_parser("schema", help="print the JSON Schema of the record format")
@@ -87,27 +133,54 @@ def main(argv: Sequence[str] | None = None) -> int:
         result = check_file(args.record)
         sys.stdout.write(render_show(result))
         return 3 if result.status == "invalid" else 0
+    if args.command == "approve":
+        from .approve import ApproveSettings, run_approve
+
+        return run_approve(ApproveSettings(
+            paths=tuple(args.paths), baseline=args.baseline, by=args.by, note=args.note,
+            accept_failing=args.accept_failing, discard_corrupt=args.discard_corrupt,
+            jobs=args.jobs))
+    if args.command == "diff":
+        from .review import DiffSettings, run_diff
+
+        return run_diff(DiffSettings(paths=tuple(args.paths), rev=args.rev,
+                                     approved=args.approved, baseline=args.baseline,
+                                     format=args.format))
     from .run import Settings
 
+    baseline = None if args.no_baseline else args.baseline or BASELINE
     return _check(Settings(paths=tuple(args.paths), out=args.out, format=args.format,
-                           jobs=args.jobs, cluster=args.cluster))
+                           jobs=args.jobs, cluster=args.cluster, baseline=baseline,
+                           baseline_required=args.baseline is not None))
 
 
 def _check(settings: Settings) -> int:
+    from . import baseline, drift
     from .cluster import ClusterUnavailable
     from .report.files import write_atomic
     from .report.text import render
     from .results import dumps
-    from .run import check_fleet
+    from .run import check_fleet, read_fleet
 
     progress = _progress if sys.stderr.isatty() else None
     try:
-        fleet = check_fleet(settings, progress=progress)
-    except ClusterUnavailable as exc:
+        store = baseline.read_store(settings.baseline, required=settings.baseline_required) \
+            if settings.baseline else None
+        read = read_fleet(settings.paths)
+        fleet = check_fleet(settings, progress=progress, read=read)
+    except (ClusterUnavailable, baseline.BaselineError) as exc:
         print(f"loopvet: {exc}", file=sys.stderr)
         return 2
     if progress:
         sys.stderr.write("\r\x1b[K")
+    if store is not None and settings.baseline:
+        sources = {p: baseline.source_of(p, data) for p, data in
+                   (r for r in read if isinstance(r, tuple))}
+        fleet = drift.apply(fleet, store, sources, scope=settings.paths,
+                            path=settings.baseline, settings=baseline.fingerprint())
+        if fleet.baseline and not fleet.baseline["comparable"]:
+            print(f"loopvet: {settings.baseline} is not comparable: "
+                  f"{fleet.baseline['reason']}", file=sys.stderr)
     payload = dumps(fleet.to_json())
     results_path = os.path.join(settings.out, "results.json")
     try:

@@ -77,6 +77,7 @@ class Summary:
     invalid: int
     degraded: int = 0
     revision_not_bumped: int = 0
+    removed: int = 0          # approved designs whose record is gone (never an exit reason)
 
     @property
     def exit_code(self) -> int:
@@ -96,29 +97,34 @@ class Summary:
     def to_json(self) -> dict[str, int]:
         return {"designs": self.designs, "pass": self.passed, "fail": self.failed,
                 "invalid": self.invalid, "degraded": self.degraded,
-                "revision_not_bumped": self.revision_not_bumped, "exit_code": self.exit_code}
+                "revision_not_bumped": self.revision_not_bumped, "removed": self.removed,
+                "exit_code": self.exit_code}
 
 
 @dataclass(frozen=True, kw_only=True, slots=True)
 class FleetResult:
     designs: tuple[DesignResult, ...]
     settings: dict[str, Any] = field(default_factory=dict)
+    baseline: dict[str, Any] | None = None   # which baseline was compared, and whether it could be
 
     @property
     def summary(self) -> Summary:
-        ds = self.designs
+        ds = [d for d in self.designs if not (d.baseline and
+                                              d.baseline.get("status") == "removed")]
         degraded = sum(1 for d in ds if d.baseline and d.baseline.get("status") == "degraded")
         stale = sum(1 for d in ds if d.baseline and d.baseline.get("content_changed")
                     and not d.baseline.get("revision_bumped"))
         return Summary(designs=len(ds), passed=sum(d.status == "pass" for d in ds),
                        failed=sum(d.status == "fail" for d in ds),
                        invalid=sum(d.status == "invalid" for d in ds), degraded=degraded,
-                       revision_not_bumped=stale)
+                       revision_not_bumped=stale, removed=len(self.designs) - len(ds))
 
     def to_json(self) -> dict[str, Any]:
         out: dict[str, Any] = {"loopvet": 1, "tool_version": __version__}
         if self.settings:
             out["settings"] = self.settings
+        if self.baseline is not None:
+            out["baseline"] = self.baseline
         out["designs"] = [d.to_json() for d in self.designs]
         out["summary"] = self.summary.to_json()
         return out

@@ -28,6 +28,8 @@ class Settings:
     format: str = "text"
     jobs: int = 1
     cluster: str | None = None
+    baseline: str | None = None       # approved baseline file to compare with, if any
+    baseline_required: bool = False   # True when named on the command line: must exist
 
 
 def discover(paths: Sequence[str]) -> tuple[list[str], list[RecordProblem]]:
@@ -100,9 +102,26 @@ def _read(path: str) -> tuple[str, bytes] | DesignResult:
                                                           f"{exc.strerror}"),))
 
 
+Read = list[tuple[str, bytes] | DesignResult]
+
+
+def read_fleet(paths: Sequence[str]) -> Read:
+    """The first stage: (path, bytes) of every record file under ``paths``, in file order;
+    a path that cannot be read is already an invalid result."""
+    found, problems = discover(paths)
+    read: Read = [_read(p) for p in found]
+    read.extend(DesignResult(name=_stem(p.path), revision=None, path=p.path,
+                             status="invalid", errors=(p,)) for p in problems)
+    return read
+
+
 def check_fleet(settings: Settings, files: Iterable[str] | None = None,
-                progress: Callable[[int, int], None] | None = None) -> FleetResult:
+                progress: Callable[[int, int], None] | None = None,
+                read: Read | None = None) -> FleetResult:
     """Check every record; results in file order whatever the parallelism.
+
+    ``read`` (from :func:`read_fleet`) gives the bytes already read, so that later stages
+    (the baseline comparison) see exactly the bytes that were analysed.
 
     ``settings.jobs`` > 1 runs records in that many worker processes; ``settings.cluster``
     sends them to a dask.distributed scheduler at that address. Workers receive the file
@@ -110,14 +129,12 @@ def check_fleet(settings: Settings, files: Iterable[str] | None = None,
     analysed by the same deterministic code wherever it runs, so the results (and the
     results.json bytes) are identical for any number of jobs.
     """
-    paths, problems = discover(settings.paths) if files is None else (list(files), [])
-    read = [_read(p) for p in paths]
+    if read is None:
+        read = read_fleet(settings.paths) if files is None else [_read(p) for p in files]
     work = [r for r in read if not isinstance(r, DesignResult)]
     done = _run(work, settings, progress)
     it = iter(done)
     results = [r if isinstance(r, DesignResult) else next(it) for r in read]
-    results.extend(DesignResult(name=_stem(p.path), revision=None, path=p.path,
-                                status="invalid", errors=(p,)) for p in problems)
     return FleetResult(designs=tuple(_unique_names(results)))
 
 
