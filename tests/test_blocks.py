@@ -78,7 +78,20 @@ def test_state_space_matches_ss2tf(a, b, c, d):
     num = _desc(tf.num)
     den = _desc(tf.den)
     np.testing.assert_allclose(den, ref_den, rtol=1e-10, atol=1e-10)
+    # ss2tf leaves rounding noise (about 1e-16) where loopvet writes an exact zero
+    num = np.pad(num, (max(ref_num.size - num.size, 0), 0))
     np.testing.assert_allclose(num, ref_num, rtol=1e-10, atol=1e-10)
+
+
+def test_state_space_numerator_has_no_rounding_noise():
+    """C B = 0 (the input reaches the output through two states): the s^1 coefficient of the
+    numerator is exactly zero, not rounding noise that would put a spurious zero near 1e14
+    (the steam header of the demo: C (sI - A)^-1 B = 0.001334 / det(sI - A), by hand)."""
+    body = ("plant: {transfer: \"1\"}\ncontroller: {state_space: {A: [[-0.0667, 0.0], "
+            "[0.02, -0.025]], B: [[0.0667], [0.0]], C: [[0.0, 1.0]], D: [[0.0]]}}\n")
+    tf = _tf(body)
+    assert tf.num[0, 1:].tolist() == [0.0] * (tf.num.shape[1] - 1)
+    assert tf.num[0, 0] == pytest.approx(0.0667 * 0.02, rel=1e-12)
 
 
 def test_parallel_pid_hand_derived():

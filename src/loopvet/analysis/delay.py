@@ -101,7 +101,7 @@ class DelayCrossings:
     ``start_plus`` and ``start_minus`` count the right-half-plane roots at K = 0+ and 0-.
     ``stable_lo`` / ``stable_hi`` hold the stable open intervals (sorted, NaN-padded);
     ``search_bound`` is K_B, the |K| up to which crossings were searched; ``undecided``
-    counts frequency intervals left undecided at 2^-40 of their segment (normally 0).
+    counts frequency intervals left undecided at 2^-40 of their frequency (normally 0).
     """
 
     gain: np.ndarray
@@ -208,8 +208,9 @@ def _isolate(tm: _Terms, minmag: np.ndarray, seg_lo: np.ndarray, seg_hi: np.ndar
     """Crossings psi(w) + off = k pi in every segment (lo, hi], all segments at once.
 
     Returns (sample, w, level k, undecided per sample). An interval surviving a round is
-    halved; after 40 rounds every interval is below 2^-40 of its segment and is counted as
-    undecided instead, so the loop ends by then.
+    halved; an interval narrower than 2^-40 of its upper end is counted as undecided
+    instead (the starting intervals span at most a few decades, so the loop ends within
+    _ROUNDS rounds).
     """
     nseg = seg_lo.size
     first = np.where(seg_lo == 0, seg_lo + (seg_hi - seg_lo) * 1e-12, seg_lo * (1 + 1e-12))
@@ -234,7 +235,6 @@ def _isolate(tm: _Terms, minmag: np.ndarray, seg_lo: np.ndarray, seg_hi: np.ndar
     wa, wb = pw[:-1][pair], pw[1:][pair]
     ua, da, ub, db = pu[:-1][pair], pd[:-1][pair], pu[1:][pair], pd[1:][pair]
     seg = pseg[:-1][pair]
-    width0 = seg_hi - seg_lo
     found_count = np.zeros(nseg, dtype=np.int64)
     undecided = np.zeros(samples, dtype=np.int64)
     out_seg: list[np.ndarray] = []
@@ -280,7 +280,10 @@ def _isolate(tm: _Terms, minmag: np.ndarray, seg_lo: np.ndarray, seg_hi: np.ndar
                 out_br.append((wa[mm], wb[mm], xa[rep], xb[rep]))
         split = np.zeros(wa.size, dtype=bool)
         split[h[~mono_h]] = True
-        tiny = split & ((wb - wa) < width0[seg] * 2.0**-40)
+        # undecided only once narrower than 2^-40 of its own frequency: a width measured
+        # against the segment would stop a segment spanning many decades (a spurious root of
+        # N far out, from rounding, makes w1 huge) long before its low-frequency crossings
+        tiny = split & ((wb - wa) < wb * 2.0**-40)
         if np.any(tiny):
             np.add.at(undecided, seg_own[seg[tiny]], 1)
         split &= ~tiny & (found_count[seg] <= MAX_CROSSINGS)
@@ -291,6 +294,8 @@ def _isolate(tm: _Terms, minmag: np.ndarray, seg_lo: np.ndarray, seg_hi: np.ndar
         ua, ub = np.concatenate([ua[sidx], um]), np.concatenate([um, ub[sidx]])
         da, db = np.concatenate([da[sidx], dm]), np.concatenate([dm, db[sidx]])
         seg = np.concatenate([seg[sidx], seg[sidx]])
+    if wa.size:                  # still undecided after _ROUNDS rounds: say so, never drop
+        np.add.at(undecided, seg_own[seg], 1)
     if not out_seg:
         z = np.zeros(0)
         return np.zeros(0, dtype=np.int64), z, z, undecided

@@ -172,7 +172,13 @@ def _state_space(ctx: _Ctx, form: StateSpace, key: str) -> Rational:
     # C (sI - A)^-1 B + D = [det(sI - A + BC) - det(sI - A) + D det(sI - A)] / det(sI - A).
     den = charpoly(a)
     closed = charpoly(a - b @ c)
-    num = poly.add(poly.sub(closed, den), poly.scale(den, d[:, 0, 0]))  # s^n terms cancel exactly
+    diff = poly.sub(closed, den)                  # s^n terms cancel exactly
+    # a coefficient below the rounding error of the subtraction is zero (C A^k B = 0 when a
+    # state path skips the output); leaving rounding noise there would add a spurious zero
+    # far out in the plane, often in the right half-plane
+    noise = 16.0 * (n + 1) * np.finfo(float).eps * (np.abs(closed) + np.abs(den))
+    diff = np.where(np.abs(diff) <= noise, 0.0, diff)
+    num = poly.add(diff, poly.scale(den, d[:, 0, 0]))
     return Rational(num, den, np.zeros(ctx.samples))
 
 
