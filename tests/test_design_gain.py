@@ -113,3 +113,26 @@ def test_phase_margin_worst_over_gain_range():
         ref.append(180 + phase)
     assert e.value == pytest.approx(min(ref), rel=1e-6)
     assert e.where["gain"] == pytest.approx(2.0, rel=1e-6)
+
+
+def test_demo_steam_header_ultimate_gain_against_mpmath():
+    """The demo steam header (state-space plant with dead time): its gain margin is
+    20 log10(K_u) with K_u = 1/|L(j w_180)| where arg L(j w_180) = -180 deg, solved with
+    mpmath (30 digits) on L = 0.001334 (s + 0.04) e^{-4 s} / (s (s + 0.0667)(s + 0.025)
+    (0.5 s + 1)) (C (sI - A)^-1 B multiplied out by hand). A rounding-noise coefficient in
+    the state-space numerator once hid this crossing."""
+    import mpmath
+
+    mpmath.mp.dps = 30
+
+    def loop(w):
+        s = mpmath.mpc(0, w)
+        return (mpmath.mpf("0.001334") * (s + mpmath.mpf("0.04")) * mpmath.exp(-4 * s)
+                / (s * (s + mpmath.mpf("0.0667")) * (s + mpmath.mpf("0.025"))
+                   * (mpmath.mpf("0.5") * s + 1)))
+
+    w180 = mpmath.findroot(lambda w: mpmath.im(loop(w)), (0.05, 0.15), solver="anderson")
+    assert mpmath.re(loop(w180)) < 0
+    gm_ref = float(20 * mpmath.log10(-1 / mpmath.re(loop(w180))))
+    res = check_file(str(ROOT / "designs" / "utilities" / "steam-header-pressure.yaml"))
+    assert res.metrics["gain_margin_db"] == pytest.approx(gm_ref, rel=1e-9)
