@@ -63,7 +63,7 @@ transfer-function form or other change of basis enters, so a defective or cluste
 (``cv = dv = 0``, e = 1 after the step), for which the blocks are the exact products
 ``x_{k+j} = Phi^j x_k + (Phi^{j-1} + ... + I) Gamma``. Blocked and step-by-step evaluation
 differ only in the order of floating-point sums: at most 3.4e-13 of the peak over the test
-suite and 3.5e-12 on random loops of up to 2e5 steps (measured against the former
+suite and 5.3e-12 over 680 random loops of up to 2e5 steps (measured against the former
 step-by-step implementation); errors propagate through the same stable dynamics either way.
 
 Jumps (neutral loops). As ``v+ - v = dv (e+ - e)`` and ``e+_k - e_k = -(v+_{k-m} -
@@ -202,7 +202,9 @@ def step_response(m: ClosedLoopMap, *, horizon: np.ndarray | None = None, points
     Method-of-steps simulation with exact matrix-exponential discretisation and a
     first-order hold on the feedback signal, ``T`` an exact multiple of the step; the only
     error is the piecewise-linear representation of that signal, O(h^2); exact for
-    ``T = 0``. See the module docstring for the grid rules and accuracy.
+    ``T = 0``. The recursion is evaluated ``BLOCK`` steps at a time (one matrix-vector
+    product per block and sample), equal to the step-by-step evaluation up to rounding. See
+    the module docstring for the grid rules, the blocks and accuracy.
     """
     p, a, b = (poly.as_batch(x) for x in (m.p, m.a, m.b))
     samples = max(p.shape[0], a.shape[0], b.shape[0], np.size(m.tau), np.size(m.delay))
