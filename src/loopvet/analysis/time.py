@@ -73,6 +73,13 @@ block to the jump pattern is computed once with the block map and added, shifted
 the pattern falls in each block. This represents the jumps exactly, as carrying both limits
 does.
 
+Matrix exponentials. The hold matrices of all samples of a group are computed together by
+scaling and squaring with the [13/13] Pade approximant (Higham 2005), in numpy: backward
+error below the unit roundoff; measured against mpmath.expm (40 digits) below 1e-14 of the
+largest entry, also for defective and norm-200 matrices. (scipy.linalg.expm, one call per
+sample, was measured at 10 us per call but at times 8 ms with two BLAS threads on a 2-core
+machine.)
+
 Horizon extension. When the horizon is doubled but a sample's step is unchanged (the step
 was set by the fastest dynamics, not by the horizon), its simulation continues from the
 stored state instead of starting over; a sample whose step changes starts afresh.
@@ -452,15 +459,63 @@ def _hold(f: np.ndarray, g: np.ndarray, dt: np.ndarray,
           h: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Exact propagation over ``dt`` of x' = f x + g e with e linear over a step h, batched
     (f: (S, n, n), g: (S, n), dt and h: (S,)): x(dt) = Phi x0 + G0 e0 + G1 e1 (e0, e1 the
-    values at the step's ends), from one matrix exponential per sample."""
+    values at the step's ends), from one matrix exponential per sample.
+
+    The exponential is taken of ``D^-1 M D`` with ``M = [[f, g, 0], [0, 0, 1], [0, 0, 0]]
+    dt`` and ``D = diag(1, .., 1, d1, d2)`` powers of two that bring the input and ramp
+    columns to 1-norm at most 1, and mapped back exactly (``exp(M) = D exp(D^-1 M D)
+    D^-1``): a large ``|g| dt`` would otherwise set the scaling-and-squaring count though
+    it does not affect the dynamics (f is balanced already, see :func:`_realise`)."""
     s, n = g.shape
+    with np.errstate(divide="ignore"):
+        d1 = np.ldexp(1.0, -np.maximum(0.0, np.ceil(np.log2(np.abs(g).sum(axis=1) * dt)))
+                      .astype(np.int64))
+        ramp = np.ldexp(1.0, -np.maximum(0.0, np.ceil(np.log2(dt))).astype(np.int64))
     aug = np.zeros((s, n + 2, n + 2))
-    aug[:, :n, :n] = f
-    aug[:, :n, n] = g
-    aug[:, n, n + 1] = 1.0
-    ex = scipy.linalg.expm(aug * dt[:, None, None])
-    f1, f2 = ex[:, :n, n], ex[:, :n, n + 1] / h[:, None]
+    aug[:, :n, :n] = f * dt[:, None, None]
+    aug[:, :n, n] = g * (dt * d1)[:, None]
+    aug[:, n, n + 1] = dt * ramp
+    ex = _expm(aug)
+    f1 = ex[:, :n, n] / d1[:, None]
+    f2 = ex[:, :n, n + 1] / (d1 * ramp * h)[:, None]
     return ex[:, :n, :n], f1 - f2, f2
+
+
+#: numerator coefficients of the [13/13] Pade approximant of exp, and the largest 1-norm
+#: for which it is accurate to double precision (Higham 2005, SIAM J. Matrix Anal. Appl.
+#: 26(4), Table 2.3 and eq. 2.10)
+_PADE13 = (64764752532480000.0, 32382376266240000.0, 7771770303897600.0,
+           1187353796428800.0, 129060195264000.0, 10559470521600.0, 670442572800.0,
+           33522128640.0, 1323241920.0, 40840800.0, 960960.0, 16380.0, 182.0, 1.0)
+_THETA13 = 5.371920351148152
+
+
+def _expm(a: np.ndarray) -> np.ndarray:
+    """exp of every matrix of ``a`` (S, n, n): scaling and squaring with the [13/13] Pade
+    approximant (Higham 2005), all samples at once with numpy. The scaling ``2^-s`` brings
+    each 1-norm to at most theta_13, where the approximant's backward error is below the
+    unit roundoff; the samples are squared back their own ``s`` times. The approximant is
+    formed as ``I + 2 (V - U)^-1 U`` rather than ``(V - U)^-1 (V + U)``, so that for a short
+    step (result near I) the entries near 1 are rounded once, not twice."""
+    s, n, _ = a.shape
+    norm = np.abs(a).sum(axis=1).max(axis=1, initial=0.0)
+    with np.errstate(divide="ignore"):
+        k = np.maximum(0, np.ceil(np.log2(norm / _THETA13))).astype(np.int64)
+    a = a * np.ldexp(1.0, -k)[:, None, None]
+    b = _PADE13
+    one = np.eye(n)
+    a2 = a @ a
+    a4 = a2 @ a2
+    a6 = a4 @ a2
+    u = a @ (a6 @ (b[13] * a6 + b[11] * a4 + b[9] * a2)
+             + b[7] * a6 + b[5] * a4 + b[3] * a2 + b[1] * one)
+    v = (a6 @ (b[12] * a6 + b[10] * a4 + b[8] * a2)
+         + b[6] * a6 + b[4] * a4 + b[2] * a2 + b[0] * one)
+    r = np.linalg.solve(v - u, 2.0 * u) + one       # (v - u)^-1 (v + u) = I + 2 (v - u)^-1 u
+    for j in range(int(k.max(initial=0))):
+        more = np.nonzero(k > j)[0]
+        r[more] = r[more] @ r[more]
+    return r
 
 
 def _coefficients(real: list[_Realisation], plans: list[_Plan],
