@@ -19,6 +19,11 @@ References (each named again beside its check):
   polynomial solution by the method of steps, built with numpy.polynomial.
 * load disturbance under PI control: the integral of the output equals 1/ki (final-value
   theorem applied to Y(s)/s; recomputed) and scipy.signal.step.
+* blocked evaluation of the recursion: a step-by-step oracle written out in this module
+  (the method-of-steps recursion with both limits of e carried, on a realisation by
+  scipy.signal.tf2ss with the hold from scipy.linalg.expm), on dead times of 1 to 187
+  steps, neutral loops, output delays on and off the grid, groups, block lengths and
+  horizon extensions; and scipy.signal.step for delay-free batches.
 
 Accuracy target of the issue: 0.2 % relative on the metrics, 1e-3 on curves with dead time;
 the tolerances below are tighter where the method allows (measured values quoted).
@@ -31,6 +36,7 @@ import math
 import mpmath
 import numpy as np
 import pytest
+import scipy.linalg
 import scipy.signal as sig
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -38,6 +44,7 @@ from numpy.polynomial import Polynomial
 from scipy.integrate import solve_ivp
 from scipy.optimize import brentq, minimize_scalar
 
+from loopvet.analysis import time as tm
 from loopvet.analysis.time import (
     StepResponse,
     disturbance_metrics,
@@ -487,3 +494,294 @@ def test_step_response_type():
     r = step_response(_map([1.0], [1.0, 1.0], [0.0]))
     assert isinstance(r, StepResponse)
     assert r.t.shape == r.y.shape and r.final.shape == r.truncated.shape == (1,)
+
+
+# ------------------------------------------- blocked evaluation vs a step-by-step oracle
+
+
+def _desc(c) -> np.ndarray:
+    d = np.trim_zeros(np.asarray(c, float)[::-1], "f")
+    return d if d.size else np.array([0.0])
+
+
+def _state_space(num, den):
+    """(F, g, c, d) of num/den (ascending coefficients) by scipy.signal.tf2ss; a zero
+    numerator (which tf2ss warns about) gives a zero output row."""
+    if not np.any(num):
+        f, g, c, d = sig.tf2ss(_desc(den), _desc(den))
+        return f, g[:, 0], np.zeros(len(f)), 0.0
+    f, g, c, d = sig.tf2ss(_desc(num), _desc(den))
+    return f, g[:, 0], c[0], float(d[0, 0])
+
+
+def _ramp_hold(f, g, dt: float, h: float):
+    """x(dt) = Phi x0 + a e0 + b (e1 - e0)/h for x' = f x + g e, e = e0 + (e1 - e0) s/h:
+    the augmented system z = (x, e, de/ds), z' = [[f, g, 0], [0, 0, 1], [0, 0, 0]] z, solved
+    by scipy.linalg.expm."""
+    n = len(f)
+    z = np.zeros((n + 2, n + 2))
+    z[:n, :n], z[:n, n], z[n, n + 1] = f, g, 1.0
+    ex = scipy.linalg.expm(z * dt)
+    return ex[:n, :n], ex[:n, n], ex[:n, n + 1] / h
+
+
+def stepwise_oracle(p, a, b, tau: float, delay: float, t: np.ndarray) -> np.ndarray:
+    """y at the uniform times t (from 0) by the method of steps written out one step at a
+    time, left and right limits of e and v both carried: realisation by
+    scipy.signal.tf2ss (not loopvet's balanced form), hold by :func:`_ramp_hold`. The
+    oracle shares the discretisation (piecewise-linear e, T a whole number of steps) with
+    loopvet, not its evaluation: no blocks, no closed-form jumps."""
+    h = float(t[1])
+    n_pts = len(t)
+    if delay > 0:
+        m = round(delay / h)
+        assert abs(m * h - delay) <= 1e-9 * delay
+        f, g, cw, dw = _state_space(p, a)
+        fv, gv, cv, dv = _state_space(b, a)
+        assert np.array_equal(f, fv) and np.array_equal(g, gv)   # one state for both
+    else:
+        m = 0
+        f, g, cw, dw = _state_space(p, P.polyadd(a, b))
+        cv, dv = np.zeros(len(f)), 0.0
+    phi, ga, gb = _ramp_hold(f, g, h, h)
+    e_left, e_right = np.zeros(n_pts + 1), np.zeros(n_pts + 1)
+    v_left, v_right = np.zeros(n_pts + 1), np.zeros(n_pts + 1)
+    xs = np.zeros((n_pts + 1, len(f)))
+    e_right[0] = 1.0                       # the unit step: e(0-) = 0, e(0+) = 1
+    x = np.zeros(len(f))
+    for k in range(n_pts):
+        xs[k] = x
+        v_left[k] = cv @ x + dv * e_left[k]
+        v_right[k] = cv @ x + dv * e_right[k]
+        j = k + 1 - m
+        past_l, past_r = (v_left[j], v_right[j]) if (m and j >= 0) else (0.0, 0.0)
+        e_left[k + 1], e_right[k + 1] = 1.0 - past_l, 1.0 - past_r
+        x = phi @ x + ga * e_right[k] + gb * (e_left[k + 1] - e_right[k])
+    w_grid = xs[:n_pts] @ cw + dw * e_right[:n_pts]            # right limits
+    ratio = tau / h
+    q = round(ratio)
+    y = np.zeros(n_pts)
+    if abs(ratio - q) <= 1e-9 * max(1.0, ratio):
+        y[q:] = w_grid[:n_pts - q]
+        return y
+    q = math.floor(ratio)
+    theta = h - (tau - q * h)              # w(t_k - tau) = w(t_j + theta), j = k - q - 1
+    ph, ta, tb = _ramp_hold(f, g, theta, h)
+    for k in range(q + 1, n_pts):
+        j = k - q - 1
+        e0, e1 = e_right[j], e_left[j + 1]
+        xt = ph @ xs[j] + ta * e0 + tb * (e1 - e0)
+        y[k] = cw @ xt + dw * (e0 + (e1 - e0) * theta / h)
+    return y
+
+
+PI_LAG = ([1.0, 0.8], [0.0, 1.0, 1.0], [1.0, 0.8])       # PI (0.8, 1) on 1/(s + 1)
+PI_DEAD = ([0.4, 0.3], [0.0, 1.0], [0.4, 0.3])           # PI (0.3, 0.4) on e^{-sT}: neutral
+PI_SIXTH = ([0.15, 0.8], list(P.polymul([0, 1], P.polypow([1, 1], 5))), [0.15, 0.8])
+
+
+def _budget(horizon: float, steps: int) -> dict:
+    """A step budget below the accuracy rule's need: h = horizon / steps, then T = m h."""
+    return {"horizon": np.array([horizon]), "max_steps": steps}
+
+
+# name: ((p, a, b), tau, delay, step_response keywords, m = T / h or None)
+ORACLE_LOOPS = {
+    "fopdt-pi": (PI_LAG, 0.5, 0.5, {}, None),                   # default grid, m > BLOCK
+    "m=1": (PI_LAG, 0.004, 0.004, _budget(8.0, 2000), 1),
+    "m=2": (PI_LAG, 0.008, 0.008, _budget(8.0, 2000), 2),
+    "m=5-tau-off-grid": (PI_LAG, 0.0137, 0.02, _budget(8.0, 2000), 5),
+    "m=64": (PI_LAG, 0.256, 0.256, _budget(8.0, 2000), 64),
+    "m=65-no-tau": (PI_LAG, 0.0, 0.26, _budget(8.0, 2000), 65),
+    "neutral-m=3": (PI_DEAD, 0.012, 0.012, _budget(4.0, 1000), 3),
+    "neutral-m=100-tau-off-grid": (PI_DEAD, 0.37, 1.0,
+                                   {"horizon": np.array([12.0]), "points": 1200}, 100),
+    # lead-lag controller on a second-order plant with B/A biproper: neutral, default grid
+    "neutral-sopdt": (([0.2, 1.5, 0.6], [0.0, 1.0, 1.5, 0.5], [0.2, 1.5, 0.6]), 0.3, 0.3,
+                      {}, None),
+    # delay free, closed loop of order 6; tau on the grid and below one step
+    "sixth-order": (PI_SIXTH, 0.0, 0.0, {}, None),
+    "sixth-order-tau": (PI_SIXTH, 0.37, 0.0, {}, None),
+    "sixth-order-tiny-tau": (PI_SIXTH, 1e-3, 0.0, {}, None),
+}
+
+
+def _oracle_case(case: str):
+    (p, a, b), tau, delay, kw, _ = ORACLE_LOOPS[case]
+    return _map(p, a, b, tau=tau, delay=delay), kw
+
+
+@pytest.mark.parametrize("case", sorted(ORACLE_LOOPS))
+def test_blocked_evaluation_matches_stepwise_oracle(case):
+    """The blocked evaluation is the step recursion regrouped: it must reproduce the
+    step-by-step oracle (independent realisation and hold) to rounding. Measured: at most
+    3e-14 of the peak."""
+    (p, a, b), tau, delay, _, m = ORACLE_LOOPS[case]
+    mp, kw = _oracle_case(case)
+    r = step_response(mp, **kw)
+    if m is not None:
+        assert delay / r.t[0, 1] == pytest.approx(m, rel=1e-9)
+    want = stepwise_oracle(p, a, b, tau, delay, r.t[0])
+    np.testing.assert_allclose(r.y[0], want, rtol=0, atol=1e-12 * np.abs(want).max(),
+                               err_msg=case)
+
+
+def test_blocked_batch_matches_oracle_in_small_groups(monkeypatch):
+    """All oracle loops in one batch, simulated in groups of 3 samples (each group padded
+    to its own state size and history length): every sample still matches the oracle on
+    its own grid."""
+    monkeypatch.setattr("loopvet.analysis.time.GROUP", 3)
+    cases = sorted(c for c in ORACLE_LOOPS if not ORACLE_LOOPS[c][3])
+    r = step_response(_stack([_oracle_case(c)[0] for c in cases]))
+    for i, case in enumerate(cases):
+        (p, a, b), tau, delay, _, _ = ORACLE_LOOPS[case]
+        want = stepwise_oracle(p, a, b, tau, delay, r.t[i])
+        np.testing.assert_allclose(r.y[i], want, rtol=0, atol=1e-12 * np.abs(want).max(),
+                                   err_msg=case)
+
+
+@pytest.mark.parametrize("block", [1, 7, 200])
+def test_block_length_only_regroups_the_recursion(monkeypatch, block):
+    """BLOCK = 1 is the plain step-by-step evaluation; other block lengths (shorter and
+    longer than the dead time of 100 and 3 steps) must agree with the default to rounding."""
+    cases = ["neutral-m=100-tau-off-grid", "neutral-m=3", "m=5-tau-off-grid",
+             "sixth-order-tiny-tau"]
+    runs = [(c, *_oracle_case(c)) for c in cases]
+    default = [step_response(mp, **kw).y for _, mp, kw in runs]
+    monkeypatch.setattr("loopvet.analysis.time.BLOCK", block)
+    for (case, mp, kw), want in zip(runs, default, strict=True):
+        got = step_response(mp, **kw).y
+        np.testing.assert_allclose(got, want, rtol=0, atol=1e-12 * np.abs(want).max(),
+                                   err_msg=case)
+
+
+def _signal_step(p, a, b, t: np.ndarray, tau: float = 0.0) -> np.ndarray:
+    """Delay-free reference: scipy.signal.step of P/(A + B) on the grid, shifted by tau (a
+    whole number of steps)."""
+    q = round(tau / t[1])
+    assert q * t[1] == pytest.approx(tau, rel=1e-9, abs=1e-15)
+    num, den = _desc(p), _desc(P.polyadd(a, b))
+    _, y = sig.step((num, den), T=t[:len(t) - q])                 # scipy.signal.step
+    return np.concatenate([np.zeros(q), y])
+
+
+def test_delay_free_batch_matches_scipy_signal():
+    """Delay-free loops of orders 2 to 6 with output delays, one batch: each sample against
+    scipy.signal.step on its own grid. Measured: below 1e-13."""
+    loops = [(*DELAY_FREE[k], tau) for k, tau in zip(sorted(DELAY_FREE), (0.0, 0.37, 0.0),
+                                                     strict=True)]
+    loops.append((*PI_SIXTH, 0.8))
+    r = step_response(_stack([_map(p, a, b, tau=tau) for p, a, b, tau in loops]))
+    assert not r.truncated.any()
+    for i, (p, a, b, tau) in enumerate(loops):
+        want = _signal_step(p, a, b, r.t[i], tau)
+        np.testing.assert_allclose(r.y[i], want, rtol=0, atol=1e-10, err_msg=str(i))
+
+
+# 30/((s + 1)^6 (s + 30)), delay free; 1e-4 e^{-0.1 s}/(A + 1e-4 e^{-0.1 s}) with
+# A = (s + 1)^6 (0.05 s + 1): closed-loop poles clustered near -1 (a slow t^5 e^{-t} tail)
+# and a fast pole (30 and 20 rad/s) that sets the step
+STIFF_SIXTH = ([30.0], list(P.polymul(P.polypow([1, 1], 6), [30, 1])), [0.0])
+CLUSTER_DELAY = ([1e-4], list(P.polymul(P.polypow([1, 1], 6), [1, 0.05])), [1e-4])
+
+
+def test_extended_horizon_continues_the_simulation(monkeypatch):
+    """Both loops are still outside the band at the end of the default horizon (10 and
+    12.6), which is doubled; their step, set by the fast pole, stays, so the simulation
+    continues from its stored state instead of starting over. A loop whose step grows with
+    the horizon starts afresh. References: scipy.signal.step (delay free) and the
+    step-by-step oracle (dead time); a fresh run with the final horizon gives the same
+    curve."""
+    built = []
+    real_init = tm._Runner.__init__
+
+    def counting_init(self, *args, **kwargs):
+        built.append(len(args[2]))
+        real_init(self, *args, **kwargs)
+
+    monkeypatch.setattr(tm._Runner, "__init__", counting_init)
+    maps = [_map(*STIFF_SIXTH), _map(*CLUSTER_DELAY, tau=0.1, delay=0.1)]
+    r = step_response(_stack(maps))
+    assert built == [2]                                        # continued, never restarted
+    assert not r.truncated.any()
+    assert r.t[0, -1] > 20 and r.t[1, -1] > 25                 # default 10 and 12.6
+    np.testing.assert_allclose(r.y[0], _signal_step(*STIFF_SIXTH, r.t[0]), rtol=0, atol=1e-10)
+    want = stepwise_oracle(*CLUSTER_DELAY, 0.1, 0.1, r.t[1])      # measured 1.1e-13
+    np.testing.assert_allclose(r.y[1], want, rtol=0, atol=1e-12 * np.abs(want).max())
+    for i in (0, 1):
+        fresh = step_response(maps[i], horizon=np.array([r.t[i, -1]]))
+        assert fresh.t[0, 1] == r.t[i, 1]
+        n = fresh.y.shape[1]
+        np.testing.assert_allclose(r.y[i, :n], fresh.y[0], rtol=0,
+                                   atol=1e-13 * np.abs(r.y[i]).max())
+    built.clear()
+    slow = ([1.0], list(P.polypow([1, 1], 6)), [0.0])     # (s + 1)^-6: h = horizon/points
+    r = step_response(_map(*slow))
+    assert built == [1, 1] and r.t[0, -1] > 15 and r.y.shape[1] == 4001  # h doubled
+    np.testing.assert_allclose(r.y[0], _signal_step(*slow, r.t[0]), rtol=0, atol=1e-10)
+
+
+def _mp_expm(a: np.ndarray) -> np.ndarray:
+    """Reference: mpmath.expm at 40 digits."""
+    mpmath.mp.dps = 40
+    return np.array(mpmath.expm(mpmath.matrix(a.tolist())).tolist(), dtype=float)
+
+
+def test_batched_matrix_exponential_matches_mpmath():
+    """The hold matrices come from a batched scaling-and-squaring exponential. Reference:
+    mpmath.expm (40 digits) on one-step hold matrices of the loops above (short and long
+    steps, so with and without squaring), a defective (Jordan) block, a nilpotent matrix and
+    random stable matrices; errors relative to the largest entry. Measured: below 1e-14."""
+    rng = np.random.default_rng(7)
+    cases = []
+    for (p, a, b), delay in ((PI_LAG, 0.5), (PI_SIXTH, 0.0), (CLUSTER_DELAY, 0.1),
+                             (STIFF_SIXTH, 0.0)):
+        den = np.asarray(a, float) if delay > 0 else P.polyadd(a, b)
+        f, g, _, _ = _state_space(p, den)
+        n = len(f)
+        for h in (1e-3, 0.05, 1.0, 10.0):
+            z = np.zeros((n + 2, n + 2))
+            z[:n, :n], z[:n, n], z[n, n + 1] = f, g, 1.0
+            cases.append((z * h, 4e-14))
+    jordan = np.diag(-np.ones(6)) + np.diag(np.ones(5), 1)
+    cases += [(jordan * t, 4e-14) for t in (1e-3, 1.0, 40.0)]
+    cases.append((np.diag(np.ones(4), 1) * 3.0, 4e-14))
+    for scale in (0.01, 5.0):
+        x = rng.normal(size=(5, 5)) * scale
+        cases.append((x - (np.abs(np.linalg.eigvals(x).real).max() + scale) * np.eye(5), 4e-14))
+    skew = rng.normal(size=(5, 5))
+    skew = 200.0 * (skew - skew.T) / np.abs(skew - skew.T).sum(axis=0).max()
+    cases.append((skew - 0.5 * np.eye(5), 1e-13))          # norm 200: 6 squarings
+    for z, tol in cases:
+        got = tm._expm(z[None])[0]
+        want = _mp_expm(z)
+        np.testing.assert_allclose(got, want, rtol=0, atol=tol * np.abs(want).max())
+    # a batch of different sizes of norm gives each matrix its own scaling
+    stack = np.stack([c[0] for c in cases if c[0].shape == (4, 4)])
+    alone = np.stack([tm._expm(z[None])[0] for z in stack])
+    np.testing.assert_allclose(tm._expm(stack), alone, rtol=1e-15, atol=0)
+
+
+@pytest.mark.parametrize("num, den, gain, dt, h, rtol", [
+    # slow third-order loop (design fleet) with the input column scaled up as balancing
+    # does: |g| dt = 384 must not force squarings that cost accuracy (they gave 9e-15)
+    ([0, 7.0, 280.0], [0, 280.0, 116200.0, 4.2e6], 512.0, 0.75, 0.75, 3e-15),
+    ([0, 7.0, 280.0], [0, 280.0, 116200.0, 4.2e6], 512.0, 0.3, 0.75, 3e-15),  # in a step
+    ([1.0, 0.8], [0.0, 1.0, 1.0], 1.0, 0.0025, 0.0025, 3e-15),
+    # seventh order, |f| h = 1: G0 = a difference, 3.2e-15
+    ([30.0], list(P.polymul(P.polypow([1, 1], 6), [30, 1])), 1.0, 1 / 600, 1 / 600, 1e-14),
+])
+def test_hold_matrices_match_mpmath_entrywise(num, den, gain, dt, h, rtol):
+    """Phi, G0, G1 of the ramp hold entry by entry against mpmath.expm (40 digits) of the
+    augmented matrix. Measured: at most 1.1e-15 relative per entry, 3.2e-15 on the last."""
+    f, g, _, _ = _state_space(num, den)
+    g = g * gain
+    n = len(f)
+    z = np.zeros((n + 2, n + 2))
+    z[:n, :n], z[:n, n], z[n, n + 1] = f, g, 1.0
+    ref = _mp_expm(z * dt)
+    g1 = ref[:n, n + 1] / h
+    want = (ref[:n, :n], ref[:n, n] - g1, g1)
+    got = tm._hold(f[None], g[None], np.array([dt]), np.array([h]))
+    for name, x, w in zip(("Phi", "G0", "G1"), got, want, strict=True):
+        np.testing.assert_allclose(x[0], w, rtol=rtol, atol=1e-300, err_msg=name)
