@@ -81,26 +81,32 @@ def test_intervals_agree_with_argument_principle(name):
         assert inside == (rhp_count(n, d, t, k) == 0), (name, k, res.stable)
 
 
+def _check_crossings_with_mpmath(name, n, d, t, res):
+    """Each crossing (w, K) solves D(jw) + K N(jw) e^{-jwT} = 0: mpmath.findroot (30 digits)
+    from loopvet's value must agree to 1e-9 relative."""
+    with mpmath.workdps(30):
+        for c in res.crossings:
+            if c.frequency == 0 or not math.isfinite(c.frequency) or c.gain == 0:
+                continue
+
+            def f(w, k):
+                s = 1j * w
+                val = sum(mpmath.mpf(x) * s**i for i, x in enumerate(d)) + k * sum(
+                    mpmath.mpf(x) * s**i for i, x in enumerate(n)) * mpmath.exp(-s * t)
+                return [mpmath.re(val), mpmath.im(val)]
+
+            w_ref, k_ref = mpmath.findroot(f, (mpmath.mpf(c.frequency), mpmath.mpf(c.gain)))
+            assert c.frequency == pytest.approx(float(w_ref), rel=1e-9), (name, c)
+            assert c.gain == pytest.approx(float(k_ref), rel=1e-9), (name, c)
+
+
 @pytest.mark.parametrize("name", sorted(LOOPS))
 def test_crossings_match_mpmath(name):
     """Each crossing (w, K) solves D(jw) + K N(jw) e^{-jwT} = 0; mpmath polishes from
     loopvet's value at 30 digits and must agree to 1e-9 relative (target 1e-6)."""
     n, d, t = _polys(name)
     res = _intervals(name)
-    mpmath.mp.dps = 30
-    for c in res.crossings:
-        if c.frequency == 0 or not math.isfinite(c.frequency) or c.gain == 0:
-            continue
-
-        def f(w, k):
-            s = 1j * w
-            val = sum(mpmath.mpf(x) * s**i for i, x in enumerate(d)) + k * sum(
-                mpmath.mpf(x) * s**i for i, x in enumerate(n)) * mpmath.exp(-s * t)
-            return [mpmath.re(val), mpmath.im(val)]
-
-        w_ref, k_ref = mpmath.findroot(f, (mpmath.mpf(c.frequency), mpmath.mpf(c.gain)))
-        assert c.frequency == pytest.approx(float(w_ref), rel=1e-9), (name, c)
-        assert c.gain == pytest.approx(float(k_ref), rel=1e-9), (name, c)
+    _check_crossings_with_mpmath(name, n, d, t, res)
 
 
 def test_fopdt_ultimate_gain():
@@ -163,17 +169,4 @@ def test_right_half_plane_poles_and_zeros(name):
             continue
         inside = any(lo < k < hi for lo, hi in res.stable)
         assert inside == (rhp_count(n, d, t, k) == 0), (name, k, res.stable)
-    mpmath.mp.dps = 30
-    for c in res.crossings:
-        if c.frequency == 0 or c.gain == 0:
-            continue
-
-        def f(w, k):
-            s = 1j * w
-            val = sum(mpmath.mpf(x) * s**i for i, x in enumerate(d)) + k * sum(
-                mpmath.mpf(x) * s**i for i, x in enumerate(n)) * mpmath.exp(-s * t)
-            return [mpmath.re(val), mpmath.im(val)]
-
-        w_ref, k_ref = mpmath.findroot(f, (mpmath.mpf(c.frequency), mpmath.mpf(c.gain)))
-        assert c.frequency == pytest.approx(float(w_ref), rel=1e-9), (name, c)
-        assert c.gain == pytest.approx(float(k_ref), rel=1e-9), (name, c)
+    _check_crossings_with_mpmath(name, n, d, t, res)
