@@ -14,7 +14,9 @@ import numpy as np
 from scipy.optimize import minimize_scalar
 
 from .. import findings as fd
-from ..lti import poly
+from ..lti import discrete, poly
+from ..lti.digital import DigitalLoop, assemble_digital, continuous_record
+from ..lti.digital import with_gains as digital_with_gains
 from ..lti.loop import Loop, assemble, near_cancellations, with_gains
 from ..lti.rational import pade
 from ..metrics import METRICS, POLE_KEYS
@@ -23,6 +25,7 @@ from ..record.errors import RecordInvalid
 from ..record.model import Record, Requirement
 from ..results import DesignResult
 from ..verdict import Entry, headroom, headroom_array, judge, judge_stability
+from . import digital as dg
 from .branches import trace
 from .delay import delay_gain_intervals
 from .evaluate import FREQUENCY_KEYS, TIME_KEYS, Evaluation, evaluate
@@ -45,27 +48,24 @@ def pairs(values: np.ndarray) -> list[list[float]]:
     return [[float(c.real), float(c.imag)] for c in vals]
 
 
-def digital_not_yet(record: Record) -> RecordInvalid:
-    return RecordInvalid([params.problem(
-        record, "sampling", "digital loops are not analysed yet: this version of loopvet "
-        "validates the sampling block but analyses continuous-time loops only; remove "
-        "sampling to check the continuous design")])
-
-
 def interval_list(intervals: Any) -> list[list[float]]:
     return [[float(lo), float(hi)] for lo, hi in intervals]
 
 
 @dataclass(frozen=True, slots=True)
 class PoleModel:
-    """The polynomials whose roots are the closed-loop poles: D_eff + K N_eff (1-D)."""
+    """The polynomials whose roots are the closed-loop poles: D_eff + K N_eff (1-D); for a
+    sampled loop they are in z and ``period`` is set (poles map through s = ln(z)/T)."""
 
     n: np.ndarray
     d: np.ndarray
     order: int | None   # Pade order, None without dead time
+    period: float | None = None
 
 
-def pole_model(loop: Loop, record: Record) -> PoleModel:
+def pole_model(loop: Loop | DigitalLoop, record: Record) -> PoleModel:
+    if isinstance(loop, DigitalLoop):
+        return PoleModel(n=loop.nz[0], d=loop.dz[0], order=None, period=loop.period)
     n, d = loop.n[0], loop.d[0]
     if not loop.has_delay:
         return PoleModel(n=n, d=d, order=None)
@@ -74,7 +74,9 @@ def pole_model(loop: Loop, record: Record) -> PoleModel:
     return PoleModel(n=poly.mul(loop.n[:1], pn)[0], d=poly.mul(loop.d[:1], pd)[0], order=order)
 
 
-def gain_analysis(loop: Loop, record: Record) -> GainIntervals:
+def gain_analysis(loop: Loop | DigitalLoop, record: Record) -> GainIntervals:
+    if isinstance(loop, DigitalLoop):
+        return dg.gain_intervals(loop)[0]
     interest = [record.gain.nominal, *(record.gain.range or ())]
     if loop.has_delay:
         return delay_gain_intervals(loop.n, loop.d, loop.delay, np.array([interest]))[0]
@@ -83,27 +85,35 @@ def gain_analysis(loop: Loop, record: Record) -> GainIntervals:
 
 def check_record(record: Record) -> DesignResult:
     """Analyse the nominal loop of a valid record. Raises RecordInvalid if it cannot be
-    assembled (for example an improper block or a derived parameter that divides by 0)."""
-    if record.sampling is not None:
-        raise digital_not_yet(record)
+    assembled (for example an improper block or a derived parameter that divides by 0).
+
+    A record with ``sampling`` is analysed in the z-domain (:mod:`loopvet.analysis.digital`);
+    its result then also carries ``continuous`` (the metrics of the continuous design) and
+    ``sampling`` (period, z-plane poles, responses at the sample instants)."""
     values = params.values(record, 1)
-    loop = assemble(record, values, 1)
+    loop = _assemble(record, values, 1)
     k = record.gain.nominal
-    found: list[fd.Finding] = [fd.near_cancellation(c.pole, c.zero, c.pole_block,
-                                                    c.zero_block, c.distance)
-                               for c in near_cancellations(loop)]
+    found: list[fd.Finding] = []
+    if isinstance(loop, Loop):
+        found += [fd.near_cancellation(c.pole, c.zero, c.pole_block, c.zero_block, c.distance)
+                  for c in near_cancellations(loop)]
     gi = gain_analysis(loop, record)
     stable = gi.interval_containing(k) is not None
     band = _band(record)
     try:
-        ev = evaluate(loop, pade=record.pade_order, band=band, intervals=[gi])
+        dev = None
+        if isinstance(loop, DigitalLoop):
+            dev = dg.evaluate(loop, band=band, intervals=[gi])
+            ev = dev.base
+        else:
+            ev = evaluate(loop, pade=record.pade_order, band=band, intervals=[gi])
     except ValueError:
         raise RecordInvalid([params.problem(
             record, "gain", "the loop is not well posed at the nominal gain: 1 + L(s) "
             "vanishes as s -> infinity, so D + K N loses its leading term; change the gain "
             "or make a block strictly proper")]) from None
-    poles = ev.poles
-    if ev.pade_order:
+    poles = ev.poles if dev is None else dev.z_poles
+    if ev.pade_order and isinstance(loop, Loop):
         found.append(fd.pade_used(float(loop.delay[0]), ev.pade_order,
                                   chosen=record.pade_order is None))
         if bool(is_stable(poles)[0]) != stable:
@@ -111,17 +121,20 @@ def check_record(record: Record) -> DesignResult:
     if gi.fixed_axis_pole:
         found.append(fd.fixed_axis_pole())
     if not stable:
-        unstable_count = int(np.sum(poles[0].real >= -1e-10 * np.maximum(1, abs(poles[0]))))
+        if dev is None:
+            unstable_count = int(np.sum(poles[0].real >= -1e-10 * np.maximum(1, abs(poles[0]))))
+        else:
+            unstable_count = int(np.sum(np.abs(poles[0]) >= 1 - dg.UNIT_RTOL))
         found.append(fd.unstable(max(unstable_count, 1), ev.pade_order))
     if loop.has_delay and math.isfinite(gi.search_bound):
         found.append(fd.gain_search_bound(gi.search_bound))
     metrics: dict[str, Any] = {key: _value(ev.metrics[key][0]) for key in METRICS}
     if ev.reference is not None and bool(ev.reference.truncated[0]):
         found.append(fd.response_truncated())
-    pc = phase_crossovers(loop, 0, [c.frequency for c in gi.crossings])
+    pc = _phase_crossovers(loop, gi)
     _compare_gain_margins(pc, metrics, stable, found)
     model = pole_model(loop, record)
-    regions = {r.key: region_intervals(r.key, r.min, r.max, model.n, model.d)[0]
+    regions = {r.key: _region_intervals(r, model)[0]
                for r in record.requirements if r.key in POLE_KEYS}
     entries = _judge(record, loop, gi, model, regions, stable, metrics, band)
     sweep_block = None
@@ -142,26 +155,112 @@ def check_record(record: Record) -> DesignResult:
     frequency = {"gain_crossovers": [{"frequency": c.frequency, "lag_deg": c.lag_deg}
                                      for c in ev.crossovers(0)],
                  "phase_crossovers": pc}
-    locus = locus_facts(loop.n[0], loop.d[0], include_negative=negative)
-    locus["branches"] = _branches(loop, gi, locus, negative)
+    n0, d0 = (loop.nz[0], loop.dz[0]) if isinstance(loop, DigitalLoop) else (loop.n[0],
+                                                                              loop.d[0])
+    locus = locus_facts(n0, d0, include_negative=negative)
+    locus["branches"] = _branches(n0, d0, [] if loop.has_delay else gi.crossings, locus,
+                                  negative)
+    extra: dict[str, Any] = {"delay": float(loop.delay[0]) if isinstance(loop, Loop) else 0.0,
+                             "pade_order": ev.pade_order, "frequency": frequency,
+                             "responses": _responses_json(ev)}
+    if dev is not None:
+        assert isinstance(loop, DigitalLoop)
+        locus["plane"] = "z"
+        extra["sampling"] = _sampling_json(record, loop, dev)
+        extra["continuous"] = _continuous_json(record, band)
     return DesignResult(
         name=record.name, revision=record.revision, path=record.path,
         status="fail" if failed else "pass", title=record.title,
         gain=gain_block, locus=locus, poles=pairs(poles[0][np.isfinite(poles[0])]),
         metrics=metrics, requirements=tuple(entries), findings=tuple(found),
-        sweep=sweep_block, extra={"delay": float(loop.delay[0]), "pade_order": ev.pade_order,
-               "frequency": frequency, "responses": _responses_json(ev)},
+        sweep=sweep_block, extra=extra,
     )
 
 
-def _branches(loop: Loop, gi: GainIntervals, locus: dict[str, Any],
+AnyLoop = Loop | DigitalLoop
+
+
+def _assemble(record: Record, values: Any, samples: int,
+              gain: np.ndarray | None = None) -> AnyLoop:
+    if record.sampling is not None:
+        return assemble_digital(record, values, samples, gain=gain)
+    return assemble(record, values, samples, gain=gain)
+
+
+def _evaluate_any(loop: AnyLoop, record: Record, **kw: Any) -> Evaluation:
+    """:func:`evaluate` for continuous loops, the z-domain version for sampled ones."""
+    if isinstance(loop, DigitalLoop):
+        kw.pop("gains_of_interest", None)
+        return dg.evaluate(loop, **kw).base
+    return evaluate(loop, pade=record.pade_order, **kw)
+
+
+def _with_gains(loop: AnyLoop, gains: np.ndarray) -> AnyLoop:
+    if isinstance(loop, DigitalLoop):
+        return digital_with_gains(loop, gains)
+    return with_gains(loop, gains)
+
+
+def _phase_crossovers(loop: AnyLoop, gi: GainIntervals) -> list[dict[str, float]]:
+    if isinstance(loop, Loop):
+        return phase_crossovers(loop, 0, [c.frequency for c in gi.crossings])
+    nyq = math.pi / loop.period
+    nus = [float(discrete.omega_to_nu(np.array(c.frequency), loop.period)) for c in gi.crossings
+           if 0 < c.frequency < nyq * (1 - 1e-12)]
+    out = phase_crossovers(loop.w_loop(), 0, nus)
+    return [{**c, "frequency": float(discrete.nu_to_omega(np.array(c["frequency"]), loop.period))}
+            for c in out]
+
+
+def _sampling_json(record: Record, loop: DigitalLoop, dev: dg.DigitalEvaluation
+                   ) -> dict[str, Any]:
+    """Period, method, z-plane poles, s-plane equivalents and the sample-instant responses."""
+    assert record.sampling is not None
+    sp = record.sampling
+    s_poles = dev.base.poles[0]
+    out: dict[str, Any] = {
+        "period": sp.period, "nyquist_frequency": math.pi / sp.period,
+        "controller_method": sp.controller_method, "computation_delay": sp.computation_delay,
+        "plane": "z",
+        "poles_s_equivalent": pairs(s_poles[np.isfinite(s_poles)]),
+        "open_loop": {"num_z": [float(x) for x in loop.nz[0]],
+                      "den_z": [float(x) for x in loop.dz[0]]},
+    }
+    sr = dev.sampled
+    if sr is not None:
+        def cut(a: np.ndarray) -> list[float]:
+            return [float(f"{v:.6g}") for v in a[:400]]
+        out["samples"] = {"t": cut(np.arange(sr.y_ref.shape[1]) * sp.period),
+                          "reference": {"y": cut(sr.y_ref[0]), "u": cut(sr.u_ref[0])},
+                          "load": {"y": cut(sr.y_load[0]), "u": cut(sr.u_load[0])}}
+        out["intersample_ripple"] = {"reference": _value(sr.ripple_ref[0]),
+                                     "load": _value(sr.ripple_load[0])}
+    return out
+
+
+def _continuous_json(record: Record, band: float) -> dict[str, Any] | None:
+    """Metrics of the continuous design (controller in s, computation delay ignored)."""
+    cont = continuous_record(record)
+    if cont is None:
+        return None
+    try:
+        loop = assemble(cont, params.values(cont, 1), 1)
+        gi = gain_analysis(loop, cont)
+        ev = evaluate(loop, pade=cont.pade_order, band=band, intervals=[gi])
+    except (RecordInvalid, ValueError):
+        return None
+    return {"metrics": {key: _value(ev.metrics[key][0]) for key in METRICS},
+            "stable": gi.interval_containing(record.gain.nominal) is not None}
+
+
+def _branches(n0: np.ndarray, d0: np.ndarray, crossings: Any, locus: dict[str, Any],
               negative: bool) -> dict[str, Any]:
     """Traced branches for plots: gains and per-branch re/im lists (5 significant digits),
-    for K >= 0 and, when the gain range reaches below 0, for K <= 0."""
+    for K >= 0 and, when the gain range reaches below 0, for K <= 0. ``crossings``: the
+    stability-boundary crossings lying on this locus (none for dead time: the locus is that
+    of the delay-free part)."""
     out: dict[str, Any] = {}
-    # the locus is that of the delay-free part: dead-time crossings do not lie on it
-    crossing = [] if loop.has_delay else [c.gain for c in gi.crossings
-                                          if math.isfinite(c.frequency)]
+    crossing = [c.gain for c in crossings if math.isfinite(c.frequency)]
     extra_pos = [g for g in crossing if g > 0] + [b["gain"] for b in locus.get("breakaway", [])]
     sides = [("positive", False, extra_pos)]
     if negative:
@@ -169,13 +268,26 @@ def _branches(loop: Loop, gi: GainIntervals, locus: dict[str, Any],
             b["gain"] for b in locus.get("negative_gain", {}).get("breakaway", [])]
         sides.append(("negative", True, extra_neg))
     for label, neg, extra in sides:
-        br = trace(loop.n[0], loop.d[0], negative=neg, extra_gains=extra, max_points=300)
+        br = trace(n0, d0, negative=neg, extra_gains=extra, max_points=300)
         out[label] = {
             "gains": [float(f"{g:.5g}") for g in br.gains],
             "re": [[float(f"{z:.5g}") for z in col] for col in br.roots.T.real],
             "im": [[float(f"{z:.5g}") for z in col] for col in br.roots.T.imag],
         }
     return out
+
+
+def _metric_at(key: str, model: PoleModel, gains: np.ndarray) -> np.ndarray:
+    if model.period is not None:
+        return dg.metric_at_gains(key, model.n, model.d, gains, model.period)
+    return metric_at_gains(key, model.n, model.d, gains)
+
+
+def _region_intervals(req: Requirement, model: PoleModel
+                      ) -> tuple[list[tuple[float, float]], list[float]]:
+    if model.period is not None:
+        return dg.region_intervals(req.key, req.min, req.max, model.n, model.d, model.period)
+    return region_intervals(req.key, req.min, req.max, model.n, model.d)
 
 
 def _worst_pole_metric(req: Requirement, model: PoleModel, lo: float, hi: float,
@@ -186,7 +298,7 @@ def _worst_pole_metric(req: Requirement, model: PoleModel, lo: float, hi: float,
     edges = sorted({lo, hi, *(x for iv in holding for x in iv if lo < x < hi)})
     ks += [0.5 * (a + b) for a, b in zip(edges[:-1], edges[1:], strict=True)]
     ks_arr = np.asarray(ks)
-    vals = metric_at_gains(req.key, model.n, model.d, ks_arr)
+    vals = _metric_at(req.key, model, ks_arr)
     sign = -1.0 if req.min is not None else 1.0    # minimise sign*value... worst = min or max
     worst_i = int(np.argmin(vals) if req.min is not None else np.argmax(vals))
     k0 = float(ks_arr[worst_i])
@@ -194,17 +306,17 @@ def _worst_pole_metric(req: Requirement, model: PoleModel, lo: float, hi: float,
     if step > 0:
         a, b = max(lo, k0 - step), min(hi, k0 + step)
         res = minimize_scalar(
-            lambda kk: -sign * float(metric_at_gains(req.key, model.n, model.d,
+            lambda kk: -sign * float(_metric_at(req.key, model,
                                                      np.array([kk]))[0]),
             bounds=(a, b), method="bounded", options={"xatol": 1e-10 * max(1.0, abs(k0))})
-        v = float(metric_at_gains(req.key, model.n, model.d, np.array([res.x]))[0])
+        v = float(_metric_at(req.key, model, np.array([res.x]))[0])
         if (req.min is not None and v < vals[worst_i]) or (req.min is None and
                                                              v > vals[worst_i]):
             return v, float(res.x)
     return float(vals[worst_i]), k0
 
 
-def _judge(record: Record, loop: Loop, gi: GainIntervals, model: PoleModel,
+def _judge(record: Record, loop: AnyLoop, gi: GainIntervals, model: PoleModel,
            regions: dict[str, list[tuple[float, float]]], stable: bool,
            metrics: dict[str, Any], band: float) -> list[Entry]:
     entries: list[Entry] = []
@@ -313,11 +425,10 @@ def _evaluate_chunked(record: Record, plan: Any, band: float, keys: set[str]
         gains = plan.gains[sl]
         count = gains.size
         values = params.values(record, count, {k: v[sl] for k, v in plan.values.items()})
-        loop = assemble(record, values, count, gain=gains)
+        loop = _assemble(record, values, count, gain=gains)
         interest = np.column_stack([gains, *(np.full(count, x) for x in
                                              (record.gain.range or ()))])
-        ev = evaluate(loop, pade=record.pade_order, band=band, gains_of_interest=interest,
-                      keys=keys)
+        ev = _evaluate_any(loop, record, band=band, gains_of_interest=interest, keys=keys)
         for key, arr in ev.metrics.items():
             metrics.setdefault(key, []).append(arr)
         stable.append(ev.stable)
@@ -348,9 +459,9 @@ def _refine(record: Record, plan: Any, entry: Entry, band: float) -> Entry:
     def value_at(x: np.ndarray) -> float:
         axes_vals = {p.name: np.array([v]) for p, v in zip(axes, x, strict=True)}
         try:
-            loop = assemble(record, params.values(record, 1, axes_vals), 1,
-                            gain=np.array([k]))
-            ev = evaluate(loop, pade=record.pade_order, band=band, time=time_needed,
+            loop = _assemble(record, params.values(record, 1, axes_vals), 1,
+                             gain=np.array([k]))
+            ev = _evaluate_any(loop, record, band=band, time=time_needed,
                           keys=(req.key,))
         except (RecordInvalid, ValueError):
             return math.nan
@@ -392,7 +503,7 @@ def _value(x: float) -> float | None:
     return None if not np.isfinite(x) and not np.isinf(x) else float(x)
 
 
-def _worst_over_gain(loop: Loop, record: Record, gi: GainIntervals, reqs: list[Requirement],
+def _worst_over_gain(loop: AnyLoop, record: Record, gi: GainIntervals, reqs: list[Requirement],
                      band: float) -> dict[str, tuple[float | None, float]]:
     """Worst value and its K over gain.range for frequency and time requirements.
 
@@ -406,7 +517,7 @@ def _worst_over_gain(loop: Loop, record: Record, gi: GainIntervals, reqs: list[R
     ks = np.unique(np.concatenate([np.linspace(lo, hi, GAIN_SAMPLES), [record.gain.nominal]]))
     need_time = any(r.key in TIME_KEYS for r in reqs)
     keys = [r.key for r in reqs]
-    ev = evaluate(with_gains(loop, ks), pade=record.pade_order, band=band,
+    ev = _evaluate_any(_with_gains(loop, ks), record, band=band,
                   intervals=[gi] * ks.size, time=need_time, keys=keys)
     out: dict[str, tuple[float | None, float]] = {}
     for req in reqs:
@@ -418,7 +529,7 @@ def _worst_over_gain(loop: Loop, record: Record, gi: GainIntervals, reqs: list[R
             a, b = float(ks[max(i - 1, 0)]), float(ks[min(i + 1, ks.size - 1)])
 
             def f(kk: float, key: str = req.key, rq: Requirement = req) -> float:
-                e = evaluate(with_gains(loop, np.array([kk])), pade=record.pade_order,
+                e = _evaluate_any(_with_gains(loop, np.array([kk])), record,
                              intervals=[gi], time=False, keys=(key,))
                 v = float(e.metrics[key][0])
                 return headroom(v, rq) if np.isfinite(v) else -1e300
@@ -427,7 +538,7 @@ def _worst_over_gain(loop: Loop, record: Record, gi: GainIntervals, reqs: list[R
                                   options={"xatol": 1e-8 * max(1.0, abs(k_worst)),
                                            "maxiter": 40})
             if res.fun < score[i]:
-                e = evaluate(with_gains(loop, np.array([res.x])), pade=record.pade_order,
+                e = _evaluate_any(_with_gains(loop, np.array([res.x])), record,
                              intervals=[gi], time=False, keys=(req.key,))
                 value, k_worst = _value(e.metrics[req.key][0]), float(res.x)
         out[req.key] = (value, k_worst)
