@@ -24,6 +24,7 @@ from ..record.model import Record, Requirement
 from ..results import DesignResult
 from ..verdict import Entry, headroom, headroom_array, judge, judge_stability
 from .branches import trace
+from .curves import envelope, frequency_block, scatter
 from .delay import delay_gain_intervals
 from .evaluate import FREQUENCY_KEYS, TIME_KEYS, Evaluation, evaluate
 from .frequency import phase_crossovers
@@ -144,13 +145,17 @@ def check_record(record: Record) -> DesignResult:
                  "phase_crossovers": pc}
     locus = locus_facts(loop.n[0], loop.d[0], include_negative=negative)
     locus["branches"] = _branches(loop, gi, locus, negative)
+    frequency = frequency_block(loop, locus, frequency)
+    responses = _responses_json(ev)
+    if sweep_block is not None:
+        sweep_block["envelope"] = envelope(record, make_plan(record), responses)
     return DesignResult(
         name=record.name, revision=record.revision, path=record.path,
         status="fail" if failed else "pass", title=record.title,
         gain=gain_block, locus=locus, poles=pairs(poles[0][np.isfinite(poles[0])]),
         metrics=metrics, requirements=tuple(entries), findings=tuple(found),
         sweep=sweep_block, extra={"delay": float(loop.delay[0]), "pade_order": ev.pade_order,
-               "frequency": frequency, "responses": _responses_json(ev)},
+               "frequency": frequency, "responses": responses},
     )
 
 
@@ -288,7 +293,8 @@ def _sweep(record: Record, band: float, found: list[fd.Finding]
                 worst[e.key] = {"value": e.value, **(e.where or {}), "refined": True}
     failed = int(fails.sum())
     block = {"samples": count, "failed_samples": failed, "yield": (count - failed) / count,
-             "methods": list(record.sweep.methods) if record.sweep else [], "worst": worst}
+             "methods": list(record.sweep.methods) if record.sweep else [], "worst": worst,
+             "scatter": scatter(plan, ev.metrics, reqs)}
     return entries, block
 
 
