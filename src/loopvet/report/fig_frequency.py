@@ -81,7 +81,13 @@ def frequency_figure(d: dict[str, Any]) -> dict[str, str] | None:
         mag.set_ylabel("magnitude |L| (dB)")
         ph.set_ylabel("phase of L (deg)")
         ph.set_xlabel("frequency ω (rad/s)")
+        crits = [c["critical_phase_deg"] for c in freq.get("gain_crossovers", [])
+                 if "critical_phase_deg" in c and lo <= c["frequency"] <= hi]
         low, high = ph.get_ylim()
+        if crits:
+            low, high = min([low, *(x - 20.0 for x in crits)]), max([high, *(x + 20.0
+                                                                               for x in crits)])
+            ph.set_ylim(low, high)
         span = high - low
         ph.yaxis.set_major_locator(MultipleLocator(45 if span <= 270 else 90 if span <= 720
                                                    else 180 if span <= 1440 else 360))

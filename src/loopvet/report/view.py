@@ -28,7 +28,7 @@ _DRIFT_RANK = {"degraded": 0, "removed": 1, "changed": 2, "improved": 3, "new": 
 
 def as_float(x: Any) -> float | None:
     """A results number as a float ("inf" strings included); None stays None."""
-    if isinstance(x, bool) or x is None:
+    if isinstance(x, bool) or not isinstance(x, int | float | str):
         return None
     if isinstance(x, str):
         return {"inf": math.inf, "-inf": -math.inf}.get(x)
@@ -43,7 +43,7 @@ def num(x: Any, digits: int = 4) -> str:
         return "stable" if x else "unstable"
     f = as_float(x)
     if f is None:
-        return str(x)
+        return x if isinstance(x, str) else "–"
     if math.isinf(f):
         return "∞" if f > 0 else "−∞"
     return f"{f:.{digits}g}".replace("-", "−")
