@@ -45,7 +45,8 @@ def render(data: dict[str, Any]) -> str:
     s = data["summary"]
     designs = sorted(data["designs"], key=view.attention)
     b = data.get("baseline") or {}
-    counts = f"{s['designs']} loops: {s['pass']} pass, {s['fail']} fail, {s['invalid']} invalid"
+    counts = (f"{s['designs']} loop{'s' if s['designs'] != 1 else ''}: {s['pass']} pass, "
+              f"{s['fail']} fail, {s['invalid']} invalid")
     if b.get("comparable"):
         counts += (f"; {s['degraded']} degraded, {s['revision_not_bumped']} without revision "
                    f"bump, {s['removed']} removed")
