@@ -17,69 +17,11 @@ from matplotlib.transforms import Affine2D
 
 from ..metrics import POLE_KEYS
 from .figures import AMBER, BRANCH, GUIDE_LINE, INK, LABEL_BOX, PLUM, SHADE, floats, render
+from .locus_window import Window, box, crossings, points, zoom
 from .view import num
 
-Window = tuple[float, float, float, float]
 _HATCH: dict[str, Any] = {"facecolor": "#f1f2f4", "edgecolor": SHADE, "hatch": "////",
                           "linewidth": 0.0}
-
-
-def _points(d: dict[str, Any], branches: dict[str, Any]) -> list[complex]:
-    locus, gain = d.get("locus") or {}, d.get("gain") or {}
-    pts = [complex(*p) for p in locus.get("open_loop_poles", []) + locus.get(
-        "open_loop_zeros", []) + (d.get("poles") or [])]
-    pts += [complex(*b["point"]) for b in locus.get("breakaway", [])]
-    pts += [complex(0.0, c["frequency"]) for c in _crossings(d, branches)]
-    rng = gain.get("range")
-    for side in branches.values():
-        g = np.asarray(floats(side["gains"]))
-        mask = (g >= rng[0]) & (g <= rng[1]) if rng else np.zeros(g.size, bool)
-        for re, im in zip(side["re"], side["im"], strict=True):
-            pts += [complex(a, b) for a, b in zip(np.asarray(floats(re))[mask],
-                                                   np.asarray(floats(im))[mask], strict=True)]
-    return [p for p in pts if math.isfinite(p.real) and math.isfinite(p.imag)]
-
-
-#: crossings are marked up to this factor beyond the largest |K| of the record (40 dB)
-CROSSING_REACH = 100.0
-
-
-def _crossings(d: dict[str, Any], branches: dict[str, Any]) -> list[dict[str, Any]]:
-    """Crossings on the drawn sides of the locus, within CROSSING_REACH of the gains the
-    record uses."""
-    gain = d.get("gain") or {}
-    scale = max(abs(g) for g in [gain.get("nominal") or 1.0, *(gain.get("range") or [])])
-    return [c for c in gain.get("crossings", [])
-            if isinstance(c["frequency"], float | int) and c["gain"] != 0
-            and (c["gain"] > 0 or "negative" in branches)
-            and abs(c["gain"]) <= CROSSING_REACH * scale]
-
-
-#: width/height of the drawn window, close to a panel's, so equal scales waste no space
-RATIO = 1.2
-
-
-def _box(pts: list[complex]) -> Window:
-    """A window around ``pts`` and the origin, symmetric about the real axis, with a margin
-    and the shape RATIO."""
-    xs = [p.real for p in pts] + [0.0]
-    ys = [abs(p.imag) for p in pts] + [0.0]
-    x0, x1, y = min(xs), max(xs), max(ys)
-    width = max(x1 - x0, 1e-9 * max(1.0, abs(x0))) * 1.2
-    height = max(2 * y * 1.15, width / RATIO)
-    width = max(width, height * RATIO)
-    xc = (x0 + x1) / 2
-    return (xc - width / 2, xc + width / 2, -height / 2, height / 2)
-
-
-def _zoom(pts: list[complex], d: dict[str, Any], whole: Window) -> Window | None:
-    poles = [complex(*p) for p in d.get("poles") or []]
-    scale = next((abs(p) for p in poles if abs(p) > 0), 0.0)
-    if scale == 0.0:
-        return None
-    near = [p for p in pts if abs(p) <= 3.0 * scale]
-    box = _box(near)
-    return box if (box[1] - box[0]) * 6 < (whole[1] - whole[0]) else None
 
 
 def _regions(ax: Axes, d: dict[str, Any], big: float) -> None:
@@ -144,7 +86,7 @@ def _panel(ax: Axes, d: dict[str, Any], win: Window, old: dict[str, Any],
     cp = np.array(d.get("poles") or np.zeros((0, 2)), dtype=float)
     ax.plot(cp[:, 0], cp[:, 1], "D", color=INK, markersize=6, mec="white", mew=0.8)
     x0, x1, y0, y1 = win
-    for c in _crossings(d, branches):
+    for c in crossings(d, branches):
         if x0 <= 0 <= x1 and y0 <= c["frequency"] <= y1:
             ax.plot([0, 0], [c["frequency"], -c["frequency"]], "^", color=PLUM, markersize=7)
             if _inside(0.0, c["frequency"], zoom):
@@ -186,24 +128,24 @@ def locus_figure(d: dict[str, Any]) -> dict[str, str] | None:
     if not branches:
         return None
     old = (d.get("baseline") or {}).get("curves") or {}
-    pts = _points(d, branches)
-    whole = _box(pts)
-    zoom = _zoom(pts, d, whole)
+    pts = points(d, branches)
+    whole = box(pts)
+    near = zoom(pts, d, whole)
 
     def draw(fig: Figure) -> bool:
-        axes = fig.subplots(1, 2 if zoom else 1, squeeze=False)[0]
-        _panel(axes[0], d, whole, old, zoom)
+        axes = fig.subplots(1, 2 if near else 1, squeeze=False)[0]
+        _panel(axes[0], d, whole, old, near)
         axes[0].set_title("Root locus")
-        if zoom:
-            _panel(axes[1], d, zoom, old)
+        if near:
+            _panel(axes[1], d, near, old)
             axes[1].set_title("Near the slowest closed-loop poles")
         _legend(axes[0], d, old)
         return True
 
     delay = d.get("delay") or 0
-    svg = render(draw, "fig-locus", "root locus", 10.0 if zoom else 6.4, 4.5 if zoom else 5.2)
+    svg = render(draw, "fig-locus", "root locus", 10.0 if near else 6.4, 4.5 if near else 5.2)
     return None if svg is None else {
-        "id": "fig-locus", "title": "Root locus", "svg": svg, "wide": "1" if zoom else "",
+        "id": "fig-locus", "title": "Root locus", "svg": svg, "wide": "1" if near else "",
         "caption": "Closed-loop roots of D + K N as K grows: thick where K lies in the "
                    "allowed range; ✕ open-loop poles, ○ zeros, ◆ closed-loop poles at the "
                    "nominal K, ▲ stability crossings and □ break points with their K; hatched: "

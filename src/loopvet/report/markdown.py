@@ -37,6 +37,13 @@ def _row(d: dict[str, Any]) -> str:
             f"{md(view.revision_text(d))} | {req} | {head} | {drift} |")
 
 
+def _worse(d: dict[str, Any], changes: list[dict[str, Any]]) -> str:
+    parts = [f"`{c['key']}`{'' if c['scope'] == 'nominal' else ' (' + c['scope'] + ')'} "
+             f"{view.num(c['old'])} → {view.num(c['new'])}" for c in changes[:4]]
+    more = f", and {len(changes) - 4} more" if len(changes) > 4 else ""
+    return f"- {md(d['name'])} got worse: " + ", ".join(parts) + more
+
+
 _HEAD = ["| status | loop | revision | tightest requirement | headroom | since approval |",
          "| --- | --- | --- | --- | ---: | --- |"]
 
@@ -61,6 +68,10 @@ def render(data: dict[str, Any]) -> str:
     if focus:
         lines += _HEAD + [_row(d) for d in focus]
         lines.append("")
+        worse = [(d, [c for c in view.drifted(d) if c["verdict"] == "degraded"])
+                 for d in focus]
+        lines += [_worse(d, cs) for d, cs in worse if cs]
+        lines += [""] if any(cs for _, cs in worse) else []
     if rest:
         lines.append(f"{rest} other loop{'s pass' if rest != 1 else ' passes'} with nothing "
                      "to report since approval.")
