@@ -65,7 +65,7 @@ def sweep_figure(d: dict[str, Any]) -> dict[str, str] | None:
 
     def draw(fig: Figure) -> bool:
         ax = fig.subplots()
-        ax.plot(floats(sc["x"]), floats(sc["y"]), linestyle="none", marker="o", markersize=3.5,
+        ax.plot(floats(sc["x"]), floats(sc["y"]), linestyle="none", marker="o", markersize=5,
                 color=INK, alpha=0.55, markeredgewidth=0, label="sweep samples")
         ax.plot([sc["nominal"][0]], [sc["nominal"][1]], linestyle="none", marker="D",
                 markersize=7, markerfacecolor="white", markeredgecolor=INK,
@@ -84,7 +84,7 @@ def sweep_figure(d: dict[str, Any]) -> dict[str, str] | None:
     ranked = ", ".join(f"{k} {v:.2f}" for k, v in sorted(influence.items(),
                                                          key=lambda kv: (-kv[1], kv[0])))
     svg = render(draw, "fig-sweep", "worst swept metric against its most influential "
-                 "parameter", 6.4, 4.2)
+                 "parameter", 5.6, 4.0)
     return None if svg is None else {
         "id": "fig-sweep", "title": "Sweep", "svg": svg,
         "caption": f"The swept requirement with the least headroom ({key}) against the "
