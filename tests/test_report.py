@@ -297,3 +297,29 @@ def test_figures_are_deterministic_and_self_contained():
     assert ids and all(i.startswith("fig-x-") for i in ids)
     refs = re.findall(r'(?:url\(#|href="#)([^)"]+)', one)
     assert set(refs) <= set(ids)
+
+
+def _design(name: str, title: str = "", **extra) -> dict:
+    base = {"name": name, "revision": 1, "path": f"designs/{name}.yaml", "status": "pass",
+            "title": title, "metrics": {}, "requirements": [], "findings": []}
+    return {**base, **extra}
+
+
+def test_writers_survive_hostile_text_without_a_browser():
+    from loopvet.report import junit, markdown, view
+
+    entry = {"key": "phase_margin_deg", "status": "fail", "value": 30.0, "bound": {"min": 45},
+             "headroom": -0.33, "scope": "nominal", "where": None}
+    data = {"designs": [_design("a|b", "bell\x07 and <tag> | pipe", requirements=[entry]),
+                        _design("a|b", status="invalid", revision=None,
+                                errors=[{"path": "x", "line": 1, "column": 2,
+                                         "message": "bad `code` <b>"}])],
+            "summary": {"designs": 2, "pass": 0, "fail": 1, "invalid": 1, "degraded": 0,
+                        "revision_not_bumped": 0, "removed": 0, "exit_code": 3}}
+    root = ET.fromstring(junit.render(data).encode())          # control characters removed
+    failure = root.find("testsuite/testcase/failure")
+    assert failure is not None and "required ≥ 45 deg" in failure.get("message", "")
+    text = markdown.render(data)
+    assert "a\\|b" in text and "<b>" not in text and "\x07" not in text
+    assert view.page_names(data["designs"]) == ["a-b.html", "a-b-2.html"]
+    assert view.tightest(data["designs"][0]) == entry
