@@ -56,7 +56,11 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("paths", nargs="*", default=["designs"], metavar="PATH",
                        help="record files or folders (searched recursively; default designs/)")
     check.add_argument("--out", default=os.path.join("reports", "latest"), metavar="DIR",
-                       help="output folder for results.json (default reports/latest/)")
+                       help="output folder for results.json, junit.xml, summary.md and the "
+                            "HTML report index.html (default reports/latest/)")
+    check.add_argument("--no-html", action="store_true",
+                       help="skip the HTML report (fastest gate run; an earlier one in DIR "
+                            "is removed)")
     check.add_argument("--format", choices=("text", "json"), default="text",
                        help="what to print on stdout: a line per record, or the results JSON")
     check.add_argument("--jobs", type=_positive, default=os.cpu_count() or 1, metavar="N",
@@ -151,7 +155,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     baseline = None if args.no_baseline else args.baseline or BASELINE
     return _check(Settings(paths=tuple(args.paths), out=args.out, format=args.format,
                            jobs=args.jobs, cluster=args.cluster, baseline=baseline,
-                           baseline_required=args.baseline is not None))
+                           baseline_required=args.baseline is not None,
+                           html=not args.no_html))
 
 
 def _check(settings: Settings) -> int:
@@ -181,13 +186,24 @@ def _check(settings: Settings) -> int:
         if fleet.baseline and not fleet.baseline["comparable"]:
             print(f"loopvet: {settings.baseline} is not comparable: "
                   f"{fleet.baseline['reason']}", file=sys.stderr)
+        elif fleet.baseline:
+            from .overlay import attach
+
+            fleet = attach(fleet, store, settings.jobs)
     payload = dumps(fleet.to_json())
     results_path = os.path.join(settings.out, "results.json")
     try:
         write_atomic(results_path, payload)
+        from .report.bundle import write_reports
+
+        written = write_reports(settings.out, json.loads(payload), html=settings.html,
+                                jobs=settings.jobs)
     except OSError as exc:
-        print(f"loopvet: cannot write {results_path}: {exc.strerror}", file=sys.stderr)
+        print(f"loopvet: cannot write into {settings.out}: {exc.strerror}", file=sys.stderr)
         return 2
+    if "index.html" in written:
+        print(f"loopvet: report in {os.path.join(settings.out, 'index.html')}",
+              file=sys.stderr)
     if settings.format == "json":
         sys.stdout.write(payload)
     else:

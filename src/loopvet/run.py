@@ -30,6 +30,7 @@ class Settings:
     cluster: str | None = None
     baseline: str | None = None       # approved baseline file to compare with, if any
     baseline_required: bool = False   # True when named on the command line: must exist
+    html: bool = True                 # write the HTML report beside results.json
 
 
 def discover(paths: Sequence[str]) -> tuple[list[str], list[RecordProblem]]:

@@ -27,6 +27,7 @@ from ..results import DesignResult
 from ..verdict import Entry, headroom, headroom_array, judge, judge_stability
 from . import digital as dg
 from .branches import trace
+from .curves import digital_frequency_block, envelope, frequency_block, scatter
 from .delay import delay_gain_intervals
 from .evaluate import FREQUENCY_KEYS, TIME_KEYS, Evaluation, evaluate
 from .frequency import phase_crossovers
@@ -160,14 +161,20 @@ def check_record(record: Record) -> DesignResult:
     locus = locus_facts(n0, d0, include_negative=negative)
     locus["branches"] = _branches(n0, d0, [] if loop.has_delay else gi.crossings, locus,
                                   negative)
+    responses = _responses_json(ev)
     extra: dict[str, Any] = {"delay": float(loop.delay[0]) if isinstance(loop, Loop) else 0.0,
-                             "pade_order": ev.pade_order, "frequency": frequency,
-                             "responses": _responses_json(ev)}
+                             "pade_order": ev.pade_order, "responses": responses}
     if dev is not None:
         assert isinstance(loop, DigitalLoop)
         locus["plane"] = "z"
+        extra["frequency"] = digital_frequency_block(loop, frequency)
         extra["sampling"] = _sampling_json(record, loop, dev)
         extra["continuous"] = _continuous_json(record, band)
+    else:
+        assert isinstance(loop, Loop)
+        extra["frequency"] = frequency_block(loop, locus, frequency)
+        if sweep_block is not None:
+            sweep_block["envelope"] = envelope(record, make_plan(record), responses)
     return DesignResult(
         name=record.name, revision=record.revision, path=record.path,
         status="fail" if failed else "pass", title=record.title,
@@ -400,7 +407,8 @@ def _sweep(record: Record, band: float, found: list[fd.Finding]
                 worst[e.key] = {"value": e.value, **(e.where or {}), "refined": True}
     failed = int(fails.sum())
     block = {"samples": count, "failed_samples": failed, "yield": (count - failed) / count,
-             "methods": list(record.sweep.methods) if record.sweep else [], "worst": worst}
+             "methods": list(record.sweep.methods) if record.sweep else [], "worst": worst,
+             "scatter": scatter(plan, ev.metrics, reqs)}
     return entries, block
 
 
