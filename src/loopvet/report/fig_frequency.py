@@ -101,7 +101,10 @@ def frequency_figure(d: dict[str, Any]) -> dict[str, str] | None:
     svg = render(draw, "fig-frequency", "open-loop frequency response", 6.2, 5.2)
     return None if svg is None else {
         "id": "fig-frequency", "title": "Frequency response", "svg": svg,
-        "caption": "Magnitude and phase of the loop L(jω) = K C G H e^(−sT), dead time exact. "
+        "caption": ("Magnitude and phase of the sampled loop L(e^(jωT)) on the unit circle, "
+                    "up to the Nyquist frequency π/T. " if d.get("sampling") else
+                    "Magnitude and phase of the loop L(jω) = K C G H e^(−sT), dead time "
+                    "exact. ") +
                    "Arrows: the phase margin at each gain crossover, measured from the "
                    "nearest odd multiple of 180°, and the gain change that would take the "
                    "phase crossovers within 40 dB to −1."}
