@@ -22,6 +22,8 @@ from pathlib import Path
 
 import pytest
 
+from loopvet.analysis.curves import ENVELOPE_SAMPLES
+
 from .cdp import Browser, find_chromium
 from .conftest import ROOT
 
@@ -176,7 +178,7 @@ def test_results_carry_the_curves_the_figures_draw(runs):
     assert curves["revision"] == 3 and curves["branches"]["positive"]["gains"]
     assert curves["frequency"]["response"]["w"] and curves["responses"]["reference"]["y"]
     sweep = by["cold-store-air-temp"]["sweep"]
-    assert sweep["envelope"]["samples"] == 24
+    assert sweep["envelope"]["samples"] == ENVELOPE_SAMPLES
     low, high = sweep["envelope"]["reference"]["low"], sweep["envelope"]["reference"]["high"]
     assert all(lo <= hi for lo, hi in zip(low, high, strict=True))
     assert sweep["scatter"]["parameter"] in sweep["scatter"]["influence"]

@@ -41,7 +41,7 @@ NYQUIST_POINTS = 900
 NYQUIST_RADIUS = 6.0
 NYQUIST_KEEP = 500
 #: sweep samples simulated for the response envelope (evenly spread over the plan)
-ENVELOPE_SAMPLES = 24
+ENVELOPE_SAMPLES = 12
 #: points kept in the sweep scatter
 SCATTER_POINTS = 400
 
