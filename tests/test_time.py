@@ -592,7 +592,10 @@ ORACLE_LOOPS = {
     "m=2": (PI_LAG, 0.008, 0.008, _budget(8.0, 2000), 2),
     "m=5-tau-off-grid": (PI_LAG, 0.0137, 0.02, _budget(8.0, 2000), 5),
     "m=64": (PI_LAG, 0.256, 0.256, _budget(8.0, 2000), 64),
-    "m=65-no-tau": (PI_LAG, 0.0, 0.26, _budget(8.0, 2000), 65),
+    # a dead time of one block and of one block and a step (blocks read only the past)
+    "m=BLOCK": (PI_LAG, 0.004 * tm.BLOCK, 0.004 * tm.BLOCK, _budget(8.0, 2000), tm.BLOCK),
+    "m=BLOCK+1-no-tau": (PI_LAG, 0.0, 0.004 * (tm.BLOCK + 1), _budget(8.0, 2000),
+                         tm.BLOCK + 1),
     "neutral-m=3": (PI_DEAD, 0.012, 0.012, _budget(4.0, 1000), 3),
     "neutral-m=100-tau-off-grid": (PI_DEAD, 0.37, 1.0,
                                    {"horizon": np.array([12.0]), "points": 1200}, 100),
