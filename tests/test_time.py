@@ -592,7 +592,10 @@ ORACLE_LOOPS = {
     "m=2": (PI_LAG, 0.008, 0.008, _budget(8.0, 2000), 2),
     "m=5-tau-off-grid": (PI_LAG, 0.0137, 0.02, _budget(8.0, 2000), 5),
     "m=64": (PI_LAG, 0.256, 0.256, _budget(8.0, 2000), 64),
-    "m=65-no-tau": (PI_LAG, 0.0, 0.26, _budget(8.0, 2000), 65),
+    # a dead time of one block and of one block and a step (blocks read only the past)
+    "m=BLOCK": (PI_LAG, 0.004 * tm.BLOCK, 0.004 * tm.BLOCK, _budget(8.0, 2000), tm.BLOCK),
+    "m=BLOCK+1-no-tau": (PI_LAG, 0.0, 0.004 * (tm.BLOCK + 1), _budget(8.0, 2000),
+                         tm.BLOCK + 1),
     "neutral-m=3": (PI_DEAD, 0.012, 0.012, _budget(4.0, 1000), 3),
     "neutral-m=100-tau-off-grid": (PI_DEAD, 0.37, 1.0,
                                    {"horizon": np.array([12.0]), "points": 1200}, 100),
@@ -642,16 +645,17 @@ def test_blocked_batch_matches_oracle_in_small_groups(monkeypatch):
 
 @pytest.mark.parametrize("block", [1, 7, 200])
 def test_block_length_only_regroups_the_recursion(monkeypatch, block):
-    """BLOCK = 1 is the plain step-by-step evaluation; other block lengths (shorter and
-    longer than the dead time of 100 and 3 steps) must agree with the default to rounding."""
-    cases = ["neutral-m=100-tau-off-grid", "neutral-m=3", "m=5-tau-off-grid",
-             "sixth-order-tiny-tau"]
-    runs = [(c, *_oracle_case(c)) for c in cases]
-    default = [step_response(mp, **kw).y for _, mp, kw in runs]
+    """BLOCK = 1 is the plain step-by-step evaluation; blocks shorter and longer than the
+    dead times (100, 3 and 5 steps) regroup the same sums: each matches the step-by-step
+    oracle as the default does."""
     monkeypatch.setattr("loopvet.analysis.time.BLOCK", block)
-    for (case, mp, kw), want in zip(runs, default, strict=True):
-        got = step_response(mp, **kw).y
-        np.testing.assert_allclose(got, want, rtol=0, atol=1e-12 * np.abs(want).max(),
+    for case in ("neutral-m=100-tau-off-grid", "neutral-m=3", "m=5-tau-off-grid",
+                 "sixth-order-tiny-tau"):
+        (p, a, b), tau, delay, _, _ = ORACLE_LOOPS[case]
+        mp, kw = _oracle_case(case)
+        r = step_response(mp, **kw)
+        want = stepwise_oracle(p, a, b, tau, delay, r.t[0])
+        np.testing.assert_allclose(r.y[0], want, rtol=0, atol=1e-12 * np.abs(want).max(),
                                    err_msg=case)
 
 
