@@ -382,8 +382,8 @@ def evaluate(loop: DigitalLoop, *, band: float = 0.02, time: bool = True,
              keys: Iterable[str] | None = None) -> DigitalEvaluation:
     """Every metric of the requirement table for a batch of sampled loops (module notes).
 
-    Same contract as :func:`loopvet.analysis.evaluate.evaluate`; ``crossover_w`` and the
-    grid are physical frequencies (rad/s) below the Nyquist frequency, ``poles`` are the
+    Same contract as :func:`loopvet.analysis.evaluate.evaluate`; ``crossover_w`` holds
+    physical frequencies (rad/s) below the Nyquist frequency, ``poles`` are the
     s-plane equivalents ln(z)/T.
     """
     s = loop.samples
@@ -405,7 +405,6 @@ def evaluate(loop: DigitalLoop, *, band: float = 0.02, time: bool = True,
     out |= pole_metrics(sp)
     cross_w = np.zeros((s, 0))
     cross_lag = np.zeros((s, 0))
-    grid = np.zeros((s, 0))
     if want & set(FREQUENCY_KEYS):
         nu = fq.crossover_array(w)
         cross_lag = fq.lag_array(w, nu)
@@ -416,7 +415,6 @@ def evaluate(loop: DigitalLoop, *, band: float = 0.02, time: bool = True,
         if wanted:
             wp = poly.roots_ragged(poly.add(w.d, poly.scale(w.n, loop.gain)))
             gv = fq.sample_grid(w, nu, wp)
-            grid = _omega(gv, t)
             maps = {"sensitivity_peak": loop.sensitivity,
                     "complementary_sensitivity_peak": loop.complementary,
                     "control_sensitivity_peak": loop.control}
@@ -442,5 +440,5 @@ def evaluate(loop: DigitalLoop, *, band: float = 0.02, time: bool = True,
                 out[key][idx] = src[key]
     base = Evaluation(metrics=out, stable=stable, intervals=intervals, crossover_w=cross_w,
                       crossover_lag=cross_lag, poles=sp, pade_order=None, reference=ref,
-                      load=load, grid=grid)
+                      load=load)
     return DigitalEvaluation(base=base, sampled=sampled, z_poles=zp)

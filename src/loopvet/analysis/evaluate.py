@@ -9,7 +9,7 @@ frequency metrics treat dead time exactly; time metrics simulate it exactly.
 from __future__ import annotations
 
 from collections.abc import Iterable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -53,7 +53,6 @@ class Evaluation:
     pade_order: int | None
     reference: StepResponse | None = None
     load: StepResponse | None = None
-    grid: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
 
     def crossovers(self, i: int) -> list[fq.Crossover]:
         """Sample ``i``'s gain crossovers with their lags, by frequency."""
@@ -97,7 +96,6 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
     freq_keys = want & set(FREQUENCY_KEYS)
     cross_w = np.zeros((s, 0))
     cross_lag = np.zeros((s, 0))
-    grid = np.zeros((s, 0))
     if freq_keys:
         cross_w = fq.crossover_array(loop)
         cross_lag = fq.lag_array(loop, cross_w)
@@ -105,7 +103,7 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
             fq.margin_arrays(cross_w, cross_lag, stable)
     if freq_keys & {*PEAK_KEYS, "bandwidth"}:
         wanted = [k for k in (*PEAK_KEYS, "bandwidth") if k in want]
-        grid = _peaks(loop, cross_w, ps.poles, wanted, out)
+        _peaks(loop, cross_w, ps.poles, wanted, out)
         for key in wanted:
             out[key] = np.where(unstable, np.nan, out[key])
     ref = load = None
@@ -122,7 +120,7 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
                 out[key] = np.full(s, np.nan)
     return Evaluation(metrics=out, stable=stable, intervals=intervals, crossover_w=cross_w,
                       crossover_lag=cross_lag, poles=ps.poles, pade_order=ps.pade_order,
-                      reference=ref, load=load, grid=grid)
+                      reference=ref, load=load)
 
 
 def _stability(loop: Loop, poles: np.ndarray, goi: np.ndarray, margins: bool
@@ -154,27 +152,22 @@ DELAY_BLOCK = 128
 
 
 def _peaks(loop: Loop, cross_w: np.ndarray, poles: np.ndarray, keys: list[str],
-           out: dict[str, np.ndarray]) -> np.ndarray:
-    """Peaks and bandwidth into ``out``, in row blocks for loops with dead time; returns the
-    frequency set of the first block (for the report of a single loop)."""
+           out: dict[str, np.ndarray]) -> None:
+    """Peaks and bandwidth into ``out``, in row blocks for loops with dead time."""
     s = loop.samples
     step = DELAY_BLOCK if loop.has_delay else max(s, 1)
     for key in keys:
         out[key] = np.full(s, np.nan)
-    first = np.zeros((0, 0))
     for start in range(0, s, step):
         blk = slice(start, min(start + step, s))
         sub = loop_rows(loop, blk) if step < s else loop
         grid = fq.sample_grid(sub, cross_w[blk], poles[blk])
-        if start == 0:
-            first = grid
         maps = {"sensitivity_peak": sub.sensitivity,
                 "complementary_sensitivity_peak": sub.complementary,
                 "control_sensitivity_peak": sub.control}
         for key in keys:
             out[key][blk] = fq.bandwidth(sub.reference(), grid) if key == "bandwidth" \
                 else fq.peak(maps[key](), grid)
-    return first
 
 
 def _num(col: np.ndarray) -> np.ndarray:
