@@ -73,6 +73,8 @@ def collision_points(case: Case) -> np.ndarray:
     out = []
     if not p.is_zero and p.degree() >= 1:
         out.append(np.roots([float(c) for c in p.all_coeffs()]))
+    if p.is_zero:        # N proportional to D: L is constant, every root is fixed (and met)
+        out.append(np.roots([float(c) for c in sp.Poly(case.D.as_expr(), S).all_coeffs()]))
     return np.concatenate(out) if out else np.zeros(0, dtype=complex)
 
 
