@@ -42,6 +42,11 @@ NYQUIST_RADIUS = 6.0
 NYQUIST_KEEP = 500
 #: sweep samples simulated for the response envelope (evenly spread over the plan)
 ENVELOPE_SAMPLES = 12
+#: step budget of each envelope response: the band is drawn at the nominal response's ~400
+#: display points, so a grid of this many steps over the horizon is ample. Without dead time
+#: the simulation is exact at its steps whatever the step; with dead time the hold error is
+#: O(h^2) (see :mod:`loopvet.analysis.time`), invisible at display resolution.
+ENVELOPE_STEPS = 2000
 #: points kept in the sweep scatter
 SCATTER_POINTS = 400
 
@@ -212,7 +217,8 @@ def envelope(record: Record, plan: Any, responses: dict[str, Any]) -> dict[str, 
         t = np.asarray(responses[kind]["t"], dtype=float)
         sub = ClosedLoopMap(p=m.p[stable], tau=m.tau[stable], a=m.a[stable], b=m.b[stable],
                             delay=m.delay[stable])
-        r = step_response(sub, horizon=np.array([t[-1]]) if t[-1] > 0 else None, points=300)
+        r = step_response(sub, horizon=np.array([t[-1]]) if t[-1] > 0 else None, points=300,
+                          max_steps=ENVELOPE_STEPS)
         ys = np.array([_interp(t, r.t[i], r.y[i], float(r.final[i]))
                        for i in range(stable.size)])
         out[kind] = {"t": _r5s(t), "low": _r5s(ys.min(axis=0)), "high": _r5s(ys.max(axis=0))}
