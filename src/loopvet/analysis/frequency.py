@@ -56,7 +56,7 @@ import numpy as np
 from ..lti import poly
 from ..lti.loop import ClosedLoopMap, Loop
 from ..lti.loop import rows as loop_rows
-from .gain import frequency_scale, root_bound, scaled
+from .gain import frequency_scale, positive_roots, root_bound, root_lower_bound, scaled
 
 _GOLDEN = (math.sqrt(5.0) - 1.0) / 2.0
 
@@ -69,7 +69,8 @@ class Crossover:
 
 def crossover_array(loop: Loop) -> np.ndarray:
     """Gain-crossover frequencies w > 0 with |L(jw)| = 1 as an (S, M) array, each row sorted
-    ascending and padded with NaN (batched: one eigenvalue call per distinct degree)."""
+    ascending and padded with NaN (batched: candidates from :func:`gain.positive_roots` of
+    K^2 |N|^2 - |D|^2 in w^2, then Newton on log|L| = 1)."""
     n, d, k = loop.n, loop.d, loop.gain
     ws = frequency_scale(n, d)
     ns, ds = scaled(n, ws), scaled(d, ws)
@@ -80,10 +81,7 @@ def crossover_array(loop: Loop) -> np.ndarray:
     q = e[:, 0::2]
     if q.shape[1] < 2:
         return np.zeros((loop.samples, 0))
-    x = poly.roots_ragged(q)
-    with np.errstate(invalid="ignore"):
-        keep = (np.abs(x.imag) <= 1e-3 * np.abs(x) + 1e-300) & (x.real > 0)
-    cand = np.where(keep, np.sqrt(np.abs(x.real)) * ws[:, None], np.nan)
+    cand = np.sqrt(positive_roots(q)) * ws[:, None]
     w: np.ndarray = np.full_like(cand, np.nan, dtype=np.float64)
     rows, cols = np.nonzero(np.isfinite(cand))            # polish the real candidates only
     if rows.size:
@@ -200,22 +198,6 @@ def phase_crossovers(loop: Loop, i: int, crossing_freqs: list[float]) -> list[di
 
 
 # ------------------------------------------------------------------------------ peaks
-
-def root_lower_bound(c: np.ndarray) -> np.ndarray:
-    """Per sample, a lower bound of the non-zero root magnitudes of c: Fujiwara's bound
-    applied to the reversed polynomial, 0.5 min_k |c_z/c_k|^(1/(k-z)) with c_z the lowest
-    non-zero coefficient; inf for polynomials without non-zero roots. Shape (S,)."""
-    c = np.asarray(c, dtype=np.float64)
-    nz = c != 0
-    z = np.where(nz.any(axis=1), np.argmax(nz, axis=1), 0)
-    low = np.abs(c[np.arange(c.shape[0]), z])
-    k = np.arange(c.shape[1])[None, :]
-    power = k - z[:, None]
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        term = np.where((power > 0) & nz, (low[:, None] / np.abs(c))
-                        ** (1.0 / np.maximum(power, 1)), np.inf)
-    return 0.5 * term.min(axis=1, initial=np.inf)
-
 
 #: log-grid density of the peak search, points per decade
 PER_DECADE = 20
