@@ -119,7 +119,7 @@ def _polish_magnitude(loop: Loop, w: np.ndarray, steps: int = 12) -> np.ndarray:
             step = f / fp
             step = np.where(np.isfinite(step), step, 0.0)
             ww = ww - step
-            if np.all(np.abs(step) <= 1e-15 * np.abs(ww)):
+            if np.all(np.abs(step) <= 1e-12 * np.abs(ww)):
                 break                       # converged everywhere
     return ww
 

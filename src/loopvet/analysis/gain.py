@@ -88,9 +88,9 @@ def newton_crossings(n: np.ndarray, d: np.ndarray, delay: np.ndarray, w: np.ndar
             step_k = np.where(np.isfinite(step_k), step_k, 0.0)
             ww = ww + step_w
             k = k + step_k
-            if np.all((np.abs(step_w) <= 1e-15 * np.abs(ww))
-                      & (np.abs(step_k) <= 1e-15 * np.abs(k))):
-                break                       # converged everywhere: further steps change nothing
+            if np.all((np.abs(step_w) <= 1e-12 * np.abs(ww))
+                      & (np.abs(step_k) <= 1e-12 * np.abs(k))):
+                break       # converged everywhere: the error left is of order step^2
         dv, ne, _, _ = terms(ww)
         resid = np.abs(dv + k * ne)
         size = np.abs(dv) + np.abs(k * ne)
