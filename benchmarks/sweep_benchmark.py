@@ -211,16 +211,16 @@ def run_loopvet(folder: str, out: str, jobs: int) -> tuple[float, dict]:
     return elapsed, fleet.to_json()
 
 
-def time_sweep_stage(folder: str, names: list[str]) -> float:
-    """Seconds spent in the sweep stage alone (plan, batched evaluation, worst cases) over
-    all records, as ``loopvet check`` runs it after the nominal analysis."""
-    total = 0.0
+def time_sweep_stage(folder: str, names: list[str]) -> list[float]:
+    """Seconds spent in the sweep stage alone (plan, batched evaluation, worst cases) per
+    record, as ``loopvet check`` runs it after the nominal analysis."""
+    out = []
     for nm in names:
         record = read_record(os.path.join(folder, nm + ".yaml"))
         t0 = time.perf_counter()
         sweep_stage(record, 0.02, [])
-        total += time.perf_counter() - t0
-    return total
+        out.append(time.perf_counter() - t0)
+    return out
 
 
 def maxrss_mib() -> float:
@@ -400,8 +400,9 @@ def main(argv: list[str] | None = None) -> int:
     rss_after = maxrss_mib()
     nominal_times = [run_loopvet(nosweep_dir, os.path.join(base, f"out-nominal{r}"),
                                  args.jobs)[0] for r in range(repeats)]
-    stage_times = [time_sweep_stage(fleet_dir, [s.name for s in specs])
-                   for _ in range(repeats)]
+    stage_runs = [time_sweep_stage(fleet_dir, [s.name for s in specs])
+                  for _ in range(repeats)]
+    stage_times = [sum(run) for run in stage_runs]
     designs = result["designs"]
     invalid = [d["name"] for d in designs if d["status"] == "invalid"]
     total = sum(d["sweep"]["samples"] for d in designs if d.get("sweep"))
@@ -438,12 +439,15 @@ def main(argv: list[str] | None = None) -> int:
     us_a = statistics.median(a_times) / sub_total * 1e6
 
     chars = [characteristic_ascending(b) for b in batches_all]
-    b_times = []
+    b_runs = []
     for _ in range(repeats):
-        t0 = time.perf_counter()
+        run = []
         for c in chars:
+            t0 = time.perf_counter()
             floor_eigvals(c)
-        b_times.append(time.perf_counter() - t0)
+            run.append(time.perf_counter() - t0)
+        b_runs.append(run)
+    b_times = [sum(run) for run in b_runs]
     b_samples = sum(c.shape[0] for c in chars)
     us_b = statistics.median(b_times) / b_samples * 1e6
 
@@ -492,6 +496,18 @@ def main(argv: list[str] | None = None) -> int:
     print(f"  {'ratio loopvet sweep-only / (b)':<52}{us_lv_marginal / us_b:>12.4g}")
     print(f"  {'ratio (a) / loopvet sweep stage':<52}{us_a / us_stage:>12.3g}")
     print(f"  {'ratio loopvet sweep stage / (b)':<52}{us_stage / us_b:>12.4g}")
+    print("  by loop class (sweep stage and (b) per record, summed over the class; medians):")
+    for label, members in (("without dead time", [i for i, sp in enumerate(specs)
+                                                  if not sp.delay]),
+                           ("with dead time (Pade for (b))", [i for i, sp in enumerate(specs)
+                                                               if sp.delay])):
+        if not members:
+            continue
+        n_cls = sum(chars[i].shape[0] for i in members)
+        st = statistics.median([sum(run[i] for i in members) for run in stage_runs])
+        fl = statistics.median([sum(run[i] for i in members) for run in b_runs])
+        print(f"    {label:<31} {len(members):>3} records: stage {st / n_cls * 1e6:7.1f} "
+              f"us/sample, (b) {fl / n_cls * 1e6:6.2f} us/sample, ratio {st / fl:5.2f}")
     print(f"  (a) timed on {sub_note}; (b) on all {b_samples} samples, companion build + "
           "eigvals only\n  (characteristic polynomials assembled beforehand, untimed). "
           f"Dead-time loops: Pade({PADE_ORDER}) for poles in all three.")

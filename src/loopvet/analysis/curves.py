@@ -43,10 +43,10 @@ NYQUIST_KEEP = 500
 #: sweep samples simulated for the response envelope (evenly spread over the plan)
 ENVELOPE_SAMPLES = 12
 #: step budget of each envelope response: the band is drawn at the nominal response's ~400
-#: display points, so a grid of this many steps over the horizon is ample. Without dead time
+#: display points, so a grid of twice as many steps over the horizon is ample. Without dead time
 #: the simulation is exact at its steps whatever the step; with dead time the hold error is
 #: O(h^2) (see :mod:`loopvet.analysis.time`), invisible at display resolution.
-ENVELOPE_STEPS = 2000
+ENVELOPE_STEPS = 800
 #: points kept in the sweep scatter
 SCATTER_POINTS = 400
 
