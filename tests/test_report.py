@@ -20,9 +20,12 @@ import xml.etree.ElementTree as ET
 from html.parser import HTMLParser
 from pathlib import Path
 
+import numpy as np
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
 
-from loopvet.analysis.curves import ENVELOPE_SAMPLES
+from loopvet.analysis.curves import ENVELOPE_SAMPLES, _r5s, r5
 
 from .cdp import Browser, find_chromium
 from .conftest import ROOT
@@ -325,3 +328,12 @@ def test_writers_survive_hostile_text_without_a_browser():
     assert "a\\|b" in text and "<b>" not in text and "\x07" not in text
     assert view.page_names(data["designs"]) == ["a-b.html", "a-b-2.html"]
     assert view.tightest(data["designs"][0]) == entry
+
+
+@given(st.lists(st.floats(allow_nan=True, allow_infinity=True), max_size=50))
+def test_rounding_of_curves_in_one_pass_equals_value_by_value(values):
+    """The array path of the 5-significant-digit rounding gives exactly the digits of the
+    value-by-value path (Python's own '.5g' formatting), NaN -> None and infinities kept."""
+    got = _r5s(np.array(values, dtype=float))
+    want = [r5(v) for v in values]
+    assert [repr(v) for v in got] == [repr(v) for v in want]

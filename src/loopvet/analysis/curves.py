@@ -61,7 +61,13 @@ def r5(x: float) -> float | None:
 
 
 def _r5s(values: Any) -> list[float | None]:
-    return [r5(v) for v in np.ravel(values)]
+    """:func:`r5` of every value (one %-format of the whole array when all are finite:
+    the same digits as the per-value path, several times faster)."""
+    arr = np.asarray(values, dtype=np.float64).ravel()
+    if arr.size and np.all(np.isfinite(arr)):
+        text = ("%.5g " * arr.size) % tuple(arr.tolist())
+        return [float(t) for t in text.split()]
+    return [r5(v) for v in arr.tolist()]
 
 
 def _pairs(items: list[list[float]]) -> np.ndarray:
