@@ -227,6 +227,9 @@ PER_DECADE = 20
 RESONANCE_OFFSETS = np.arange(-4, 5) / 2.0
 #: largest number of frequency points evaluated at once in the peak search (memory bound)
 BLOCK_POINTS = 2_000_000
+#: points per row block of the peak search's grid pass: small enough for the working arrays
+#: to stay in the processor cache (measured about 2.5 times faster than whole batches)
+CACHE_POINTS = 8192
 
 
 def sample_grid(loop: Loop, extra: np.ndarray, char_roots: np.ndarray,
@@ -257,26 +260,36 @@ def sample_grid(loop: Loop, extra: np.ndarray, char_roots: np.ndarray,
     frac = np.linspace(0.0, 1.0, count)[None, :]
     parts = [np.exp(np.log(lo)[:, None] + frac * np.log(hi / lo)[:, None])]
     light = np.isfinite(cr) & (np.abs(cr.real) < np.abs(cr.imag)) & (cr.imag > 0)
-    if light.any():
+    most = int(light.sum(axis=1).max(initial=0))
+    if most:
+        pick = np.argsort(~light, axis=1, kind="stable")[:, :most]   # the light poles first
+        cr = np.take_along_axis(cr, pick, axis=1)
         width = np.maximum(np.abs(cr.real), 1e-9 * np.abs(cr.imag))
         res = np.abs(cr.imag)[:, :, None] + width[:, :, None] * RESONANCE_OFFSETS
-        parts.append(np.where(light[:, :, None], res, np.nan).reshape(s_count, -1))
+        keep = np.take_along_axis(light, pick, axis=1)
+        parts.append(np.where(keep[:, :, None], res, np.nan).reshape(s_count, -1))
     parts.append(ex)
-    return _merge(parts)
+    return _merge(parts, dense=1)
 
 
-def _merge(parts: list[np.ndarray]) -> np.ndarray:
-    """Rows of the concatenated point sets, ascending, without non-positive or NaN points;
-    short rows padded by repeating their last point."""
-    grid = np.concatenate(parts, axis=1)
-    grid = np.where(grid > 0, grid, np.nan)
-    grid = np.sort(grid, axis=1)                          # NaN last
-    valid = np.isfinite(grid)
-    last = np.maximum(valid.sum(axis=1) - 1, 0)
-    fill = grid[np.arange(grid.shape[0]), last]
-    grid = np.where(valid, grid, fill[:, None])
-    width = int(valid.sum(axis=1).max(initial=1))
-    return grid[:, :max(width, 1)]
+def _merge(parts: list[np.ndarray], dense: int = 0) -> np.ndarray:
+    """Rows of the concatenated point sets, ascending, without non-positive, infinite or
+    NaN points; short rows padded by repeating their last point. The first ``dense`` parts
+    are known to hold finite positive points only (not checked again)."""
+    clean = parts[:dense] + [np.where((q > 0) & (q < np.inf), q, np.nan) for q in parts[dense:]]
+    grid = np.concatenate(clean, axis=1)
+    grid.sort(axis=1)                                     # NaN last
+    counts = sum(q.shape[1] for q in clean[:dense]) + sum(
+        (q > 0).sum(axis=1) for q in clean[dense:])
+    counts = np.broadcast_to(np.asarray(counts), (grid.shape[0],))
+    width = max(int(counts.max(initial=1)), 1)
+    grid = grid[:, :width]
+    low = int(counts.min(initial=width))
+    if low < width:                                       # pad the short rows
+        fill = grid[np.arange(grid.shape[0]), np.maximum(counts - 1, 0)]
+        cols = np.arange(low, width)[None, :]
+        grid[:, low:] = np.where(cols < counts[:, None], grid[:, low:], fill[:, None])
+    return grid
 
 
 #: points per period 2 pi/T of the dead-time ripple, and the most ripple points per sample
@@ -297,20 +310,17 @@ def _with_ripple(m: ClosedLoopMap, g2: np.ndarray, upto: np.ndarray) -> np.ndarr
     if n_lin <= 0:
         return g2
     top = np.where(need, np.minimum(upto, n_lin * step), np.nan)
-    return _merge([g2, top[:, None] * np.arange(1, n_lin + 1)[None, :] / n_lin])
+    return _merge([g2, top[:, None] * np.arange(1, n_lin + 1)[None, :] / n_lin], dense=1)
 
 
-def _ripple_reach(m: ClosedLoopMap, g2: np.ndarray, env: np.ndarray | None,
-                  best: np.ndarray) -> np.ndarray:
+def _ripple_reach(m: ClosedLoopMap, g2: np.ndarray, env: np.ndarray, best: np.ndarray
+                  ) -> np.ndarray:
     """Per sample, how far the ripple grid must reach for a peak search: the largest grid
     frequency (times 1.25) where the delay-free envelope |P|/(|A| - |B|) (``env`` on
-    ``g2``, computed here when None), which bounds |m| whatever the phase of the delay
-    term, is not below the best value found so far; where the envelope never falls
-    (|B| >= |A| at the top of the grid), the frequency beyond which |B/A| < 1e-3, doubling
-    from the top of the grid, at most 1e12."""
-    if env is None:
-        with np.errstate(all="ignore"):
-            env = m.envelope(g2)
+    ``g2``), which bounds |m| whatever the phase of the delay term, is not below the best
+    value found so far; where the envelope never falls (|B| >= |A| at the top of the
+    grid), the frequency beyond which |B/A| < 1e-3, doubling from the top of the grid, at
+    most 1e12."""
     with np.errstate(invalid="ignore"):
         above = np.isnan(env) | (env >= best[:, None] * (1.0 - 1e-12))
     last = g2.shape[1] - 1 - np.argmax(above[:, ::-1], axis=1)
@@ -389,15 +399,14 @@ def _grid_2d(grid: np.ndarray, samples: int) -> np.ndarray:
     return np.broadcast_to(g, (samples, g.shape[-1])) if g.ndim == 1 else g
 
 
-def _blocks(samples: int, points: int) -> list[slice]:
-    step = max(1, BLOCK_POINTS // max(points, 1))
+def _blocks(samples: int, points: int, budget: int = BLOCK_POINTS) -> list[slice]:
+    step = max(1, budget // max(points, 1))
     return [slice(i, min(i + step, samples)) for i in range(0, samples, step)]
 
 
 def _mag(m: ClosedLoopMap, w: np.ndarray) -> np.ndarray:
-    with np.errstate(all="ignore"):
-        v = m.magnitude(w)
-    return np.where(np.isnan(v), -np.inf, v)
+    """|m(jw)| at ``w`` (S, points) by :func:`_squared`; -inf where undefined."""
+    return _no_nan(np.sqrt(_squared(m, w)[0]))
 
 
 def _squared(m: ClosedLoopMap, w: np.ndarray, envelope: bool = False
@@ -405,19 +414,24 @@ def _squared(m: ClosedLoopMap, w: np.ndarray, envelope: bool = False
     """|m(jw)|^2 at real ``w`` (S, points) from one evaluation of the even and odd parts of
     P, A and B (P shared when it is A or B); with ``envelope``, also the delay-free bound
     |P|/(|A| - |B|) of :meth:`ClosedLoopMap.envelope` (inf where |B| >= |A|) from the same
-    parts. NaN where the value is undefined (0/0, overflow)."""
+    parts. NaN where the value is undefined (0/0, overflow). The delay term's cosine and
+    sine come from :func:`_cos_sin`; the rest is the arithmetic of
+    :meth:`ClosedLoopMap.magnitude`, squared."""
     with np.errstate(all="ignore"):
-        ar, ai = poly.on_axis(m.a, w)
-        br, bi = poly.on_axis(m.b, w)
-        pr, pi = (ar, ai) if m.p is m.a else (br, bi) if m.p is m.b else poly.on_axis(m.p, w)
+        x = w * w
+        ar, ai = _on_axis(m.a, w, x)
+        br, bi = _on_axis(m.b, w, x)
+        pr, pi = (ar, ai) if m.p is m.a else (br, bi) if m.p is m.b else _on_axis(m.p, w, x)
         pp = pr * pr + pi * pi
         env = None
         if envelope:
-            gap = np.hypot(ar, ai) - np.hypot(br, bi)
+            gap = np.sqrt(ar * ar + ai * ai)
+            gap -= np.sqrt(br * br + bi * bi)
+            if not np.isfinite(gap).all():          # squares overflowed: the careful way
+                gap = np.hypot(ar, ai) - np.hypot(br, bi)
             env = np.where(gap > 0, np.sqrt(pp) / np.where(gap > 0, gap, 1.0), np.inf)
         if np.any(m.delay):
-            wt = w * m.delay[:, None]
-            c, sn = np.cos(wt), np.sin(wt)
+            c, sn = _cos_sin(w * m.delay[:, None])
             qr = ar + br * c + bi * sn
             qi = ai + bi * c - br * sn
         else:
@@ -427,6 +441,38 @@ def _squared(m: ClosedLoopMap, w: np.ndarray, envelope: bool = False
         qi *= qi
         qr += qi
         return pp / qr, env
+
+
+def _cos_sin(phi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """cos phi and sin phi from t = tan(phi/2): (1 - t^2)/(1 + t^2) and 2t/(1 + t^2).
+
+    numpy vectorises tan but evaluates float64 cos and sin one value at a time, so this is
+    about ten times faster on the peak grids. Absolute error at most 2.5e-16 (measured
+    against mpmath at 40 digits on 14 000 arguments up to 1e6, including odd multiples of
+    pi, where t is largest), against about 6e-17 for numpy's cos and sin: in a map
+    P/(A + B e^{-jwT}) that moves |m| by about 2.5e-16 |B|/|A + B e^{-jwT}| relative."""
+    t = np.tan(0.5 * phi)
+    t2 = t * t
+    d = 1.0 / (1.0 + t2)
+    return (1.0 - t2) * d, 2.0 * t * d
+
+
+def _on_axis(c: np.ndarray, w: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`loopvet.lti.poly.on_axis` for a 2-D ``w`` (S, points) with x = w^2 given (the
+    same operations in the same order, without its per-call set-up)."""
+    def horner(h: np.ndarray) -> np.ndarray:
+        h = h * np.where(np.arange(h.shape[1]) % 2 == 0, 1.0, -1.0)
+        if h.shape[1] == 1:
+            return np.broadcast_to(h, x.shape)
+        out = h[:, -1:] * x + h[:, -2:-1]
+        for k in range(h.shape[1] - 3, -1, -1):
+            out *= x
+            out += h[:, k:k + 1]
+        return out
+
+    re = horner(c[:, 0::2])
+    im = horner(c[:, 1::2]) * w if c.shape[1] > 1 else np.zeros(x.shape)
+    return re, im
 
 
 def _no_nan(v: np.ndarray) -> np.ndarray:
@@ -447,7 +493,7 @@ def peak(m: ClosedLoopMap, grid: np.ndarray) -> np.ndarray:
     delay = bool(np.any(m.delay > 0))
     best = np.empty(s_count)
     found: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
-    for blk in _blocks(s_count, g2.shape[1]):
+    for blk in _blocks(s_count, g2.shape[1], CACHE_POINTS):
         rows = np.arange(s_count)[blk]
         sub = m if blk.stop - blk.start == s_count else _rows(m, blk)
         g = g2[blk]
@@ -509,8 +555,9 @@ def _merge_values(g: np.ndarray, v: np.ndarray, lin: np.ndarray, vl: np.ndarray
     """Frequencies and values of two point sets merged per row, ascending (NaN last)."""
     gm = np.concatenate([g, lin], axis=1)
     vm = np.concatenate([v, vl], axis=1)
-    order = np.argsort(gm, axis=1, kind="stable")
-    return np.take_along_axis(gm, order, axis=1), np.take_along_axis(vm, order, axis=1)
+    order = np.argsort(gm, axis=1, kind="stable")     # two sorted runs: a linear merge
+    rows = np.arange(gm.shape[0])[:, None]
+    return gm[rows, order], vm[rows, order]
 
 
 #: a local maximum of the grid is refined when its value is at least this fraction of the
@@ -550,54 +597,61 @@ def _refine_max(m: ClosedLoopMap, x: np.ndarray, f: np.ndarray) -> np.ndarray:
     PEAK_RTOL times the middle value (the peak value is then exact to about 1e-14
     relative: the model was confirmed one round earlier on a wider stencil), or when it is
     narrower than PEAK_XTOL in log w (a peak of relative width 1e-5, a pole with damping
-    1e-5, is then still exact to about 1e-12), after at most PEAK_ROUNDS rounds. Brackets
-    are dropped as they close, so a round costs three evaluations per open bracket; on the
+    1e-5, is then still exact to about 1e-12), after at most PEAK_ROUNDS rounds. Closed
+    brackets are dropped once they are a quarter of those left, so a round costs three
+    evaluations per open bracket or little more; on the
     benchmark fleet the last bracket of a batch closes after 4 to 10 rounds.
     """
     k = x.shape[0]
     best = f[:, 1].copy()
-    xa, xc, xb = (x[:, i].copy() for i in range(3))
-    fa, fc, fb = (f[:, i].copy() for i in range(3))
-    miss = np.full(k, np.inf)          # |f(vertex) - predicted peak| of the last round
+    pts = np.empty((k, 6))                 # the bracket (columns 0-2) and the new points
+    val = np.empty((k, 6))
+    pts[:, :3], val[:, :3] = x, f
+    miss = np.full(k, np.inf)              # |f(vertex) - promised peak| of the last round
+    closed = np.zeros(k, dtype=bool)
     live = np.arange(k)
+    rows = live[:, None]
     sub = m
+    stencil = np.array([-1.0, 0.0, 1.0])
+    neighbours = np.arange(-1, 2)[None, :]
     for _ in range(PEAK_ROUNDS):
-        d1, d2 = xc - xa, xb - xc
-        g1, g2 = fc - fa, fc - fb
+        xa, xc, xb = pts[:, 0], pts[:, 1], pts[:, 2]
+        fc = val[:, 1]
         with np.errstate(all="ignore"):
-            alpha = (g1 * d2 + g2 * d1) / (d1 * d2 * (d1 + d2))
-            beta = (g1 - alpha * d1 * d1) / d1
-            ok = np.isfinite(alpha) & np.isfinite(beta) & (alpha > 0)
-            excess = np.where(ok, beta * beta / (4.0 * alpha), np.inf)
-            vert = np.where(ok, xc + beta / (2.0 * alpha), xc)
+            d1, d2 = xc - xa, xb - xc
+            g1, g2 = fc - val[:, 0], fc - val[:, 2]
+            den = d1 * g2 + d2 * g1                   # > 0: the parabola is concave
+            move = 0.5 * (d2 * d2 * g1 - d1 * d1 * g2) / den     # its vertex - xc
+            excess = den * move * move / (d1 * d2 * (d1 + d2))   # its peak - fc
+            ok = (den > 0) & np.isfinite(excess)
+            move = np.where(ok, move, 0.0)
+            excess = np.where(ok, excess, np.inf)
             tol = PEAK_RTOL * fc
-            done = ((excess <= tol) & (miss <= tol)) | (xb - xa <= PEAK_XTOL) \
-                | ~np.isfinite(fc)
-        if done.any():
-            keep = ~done
-            live = live[keep]
-            if live.size == 0:
-                break
-            xa, xb, xc, fa, fb, fc, vert, excess = (
-                arr[keep] for arr in (xa, xb, xc, fa, fb, fc, vert, excess))
+            closed |= ((excess <= tol) & (miss <= tol)) | (xb - xa <= PEAK_XTOL)
+        shut = int(np.count_nonzero(closed))
+        if shut == live.size:
+            break
+        if 4 * shut >= live.size:                     # drop the closed brackets
+            keep = ~closed
+            live, pts, val = live[keep], pts[keep], val[keep]
+            move, excess = move[keep], excess[keep]
+            closed = closed[keep]
+            rows = np.arange(live.size)[:, None]
             sub = _rows(m, live)
-        h = np.maximum(_STEP_OF_MOVE * np.abs(vert - xc), _STEP_OF_WIDTH * (xb - xa))
-        u = vert[:, None] + h[:, None] * np.array([-1.0, 0.0, 1.0])[None, :]
+            xa, xc, xb = pts[:, 0], pts[:, 1], pts[:, 2]
+        h = np.maximum(_STEP_OF_MOVE * np.abs(move), _STEP_OF_WIDTH * (xb - xa))
+        u = (xc + move)[:, None] + h[:, None] * stencil
         # points outside the open bracket or on its middle add nothing (NaN: sorted last)
         u = np.where((u > xa[:, None]) & (u < xb[:, None]) & (u != xc[:, None]), u, np.nan)
         fu = _no_nan(_squared(sub, np.exp(u))[0])
         with np.errstate(invalid="ignore"):
-            miss = np.where(np.isnan(u[:, 1]), np.inf, np.abs(fu[:, 1] - (fc + excess)))
-        np.maximum.at(best, live, fu.max(axis=1))
-        pts = np.column_stack([xa, xc, xb, u])
-        val = np.column_stack([fa, fc, fb, fu])
-        order = np.argsort(pts, axis=1, kind="stable")
-        pts = np.take_along_axis(pts, order, axis=1)
-        val = np.take_along_axis(val, order, axis=1)
-        j = np.clip(np.argmax(val, axis=1), 1, 4)
-        r = np.arange(live.size)
-        xa, xc, xb = pts[r, j - 1], pts[r, j], pts[r, j + 1]
-        fa, fc, fb = val[r, j - 1], val[r, j], val[r, j + 1]
+            miss = np.where(np.isnan(u[:, 1]), np.inf, np.abs(fu[:, 1] - (val[:, 1] + excess)))
+        best[live] = np.maximum(best[live], fu.max(axis=1))
+        pts[:, 3:], val[:, 3:] = u, fu
+        order = np.argsort(pts, axis=1)
+        pts, val = pts[rows, order], val[rows, order]
+        pick = np.clip(np.argmax(val, axis=1), 1, 4)[:, None] + neighbours
+        pts[:, :3], val[:, :3] = pts[rows, pick], val[rows, pick]
     return best
 
 
@@ -618,7 +672,7 @@ def bandwidth(m: ClosedLoopMap, grid: np.ndarray) -> np.ndarray:
         j = np.where(below.any(axis=1), np.argmax(below, axis=1), g2.shape[1] - 1)
         g2 = _with_ripple(m, g2, g2[np.arange(s_count), j])
     first = np.full(s_count, -1)
-    for blk in _blocks(s_count, g2.shape[1]):
+    for blk in _blocks(s_count, g2.shape[1], CACHE_POINTS):
         below = _mag(_rows(m, np.arange(s_count)[blk]), g2[blk]) <= level[blk, None]
         first[blk] = np.where(below.any(axis=1), np.argmax(below, axis=1), -1)
     out = np.where(first < 0, np.inf, np.nan)
