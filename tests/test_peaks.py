@@ -190,3 +190,37 @@ def test_lightly_damped_second_order_resonant_peak(zeta):
     ev = evaluate(loop, pade=None, time=False, keys=KEYS[:2])
     mt = 1 / (2 * zeta * math.sqrt(1 - zeta * zeta))
     assert ev.metrics["complementary_sensitivity_peak"][0] == pytest.approx(mt, rel=1e-10)
+
+
+def test_block_sizes_do_not_change_the_peaks(monkeypatch):
+    """The grid pass runs in cache-sized row blocks and the dead-time ripple points in row
+    groups bounded by BLOCK_POINTS; tiny blocks (one or two rows each) must give every
+    sample the value it gets with the defaults (reference: the same loops evaluated with
+    the default block sizes, to 1e-13 relative)."""
+    from loopvet.analysis import frequency as fq
+
+    loops = _varied_batches()
+    wide = [evaluate(loop, pade=4, time=False, keys=KEYS[:2]) for loop in loops]
+    monkeypatch.setattr(fq, "CACHE_POINTS", 1)
+    monkeypatch.setattr(fq, "BLOCK_POINTS", 300)
+    for loop, ref in zip(loops, wide, strict=True):
+        ev = evaluate(loop, pade=4, time=False, keys=KEYS[:2])
+        for key in KEYS[:2]:
+            np.testing.assert_allclose(ev.metrics[key], ref.metrics[key], rtol=1e-13)
+
+
+def test_cos_sin_from_the_half_angle_tangent_against_mpmath():
+    """frequency._cos_sin (cos and sin from tan(phi/2)) against mpmath at 40 digits on
+    arguments up to 1e6 rad, including the odd multiples of pi where tan(phi/2) is
+    largest: absolute error at most 2.5e-16 (its docstring's claim)."""
+    from loopvet.analysis.frequency import _cos_sin
+
+    rng = np.random.default_rng(3)
+    phi = np.concatenate([rng.uniform(0, 10, 400), 10 ** rng.uniform(-8, 6, 400),
+                          np.pi * np.arange(1, 400, 2), 2 * np.pi * np.arange(1, 200)])
+    c, s = _cos_sin(phi[None, :])
+    with mpmath.workdps(40):
+        for x, cc, ss in zip(phi, c[0], s[0], strict=True):
+            xm = mpmath.mpf(float(x))
+            assert abs(float(cc - mpmath.cos(xm))) <= 2.5e-16
+            assert abs(float(ss - mpmath.sin(xm))) <= 2.5e-16

@@ -245,11 +245,12 @@ def sample_grid(loop: Loop, extra: np.ndarray, char_roots: np.ndarray,
     ex = np.where(np.isfinite(extra) & (extra > 0), extra, np.nan)
     cr = np.where(np.isfinite(char_roots), char_roots, np.nan)
     mag_cr = np.where(np.abs(cr) > 0, np.abs(cr), np.nan)
+    known = np.concatenate([mag_cr, ex], axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         upper = np.fmax.reduce([root_bound(loop.n), root_bound(loop.d),
-                                np.nanmax(np.c_[mag_cr, ex, np.full(s_count, np.nan)], axis=1)])
+                                np.fmax.reduce(known, axis=1, initial=np.nan)])
         lower = np.fmin.reduce([root_lower_bound(loop.n), root_lower_bound(loop.d),
-                                np.nanmin(np.c_[mag_cr, ex, np.full(s_count, np.nan)], axis=1)])
+                                np.fmin.reduce(known, axis=1, initial=np.nan)])
     upper = np.where(np.isfinite(upper), upper, 1.0)
     lower = np.where(np.isfinite(lower) & (lower > 0), lower, np.minimum(upper, 1.0))
     lo, hi = lower / 100.0, np.maximum(upper * 100.0, lower)
@@ -483,10 +484,10 @@ def _no_nan(v: np.ndarray) -> np.ndarray:
 def peak(m: ClosedLoopMap, grid: np.ndarray) -> np.ndarray:
     """sup over w > 0 of |m(jw)| per sample (grid, refined local maxima, w = 0, w -> inf).
 
-    ``grid`` is shared (G,) or per sample (S, G). Evaluated in row blocks of at most
-    BLOCK_POINTS points (the dead-time ripple points included); the refinement
-    (:func:`_refine_max`) is batched over all samples and maxima. Squared magnitudes
-    throughout (one square root per sample at the end).
+    ``grid`` is shared (G,) or per sample (S, G). The grid is evaluated in row blocks of
+    CACHE_POINTS points, the dead-time ripple points in row groups of at most BLOCK_POINTS;
+    the refinement (:func:`_refine_max`) is batched over all samples and maxima. Squared
+    magnitudes throughout (one square root per sample at the end).
     """
     s_count = m.p.shape[0]
     g2 = _grid_2d(grid, s_count)
