@@ -239,7 +239,8 @@ def sample_grid(loop: Loop, extra: np.ndarray, char_roots: np.ndarray,
     ``extra`` (S, M): frequencies that must be on the grid (crossovers), NaN-padded;
     ``char_roots`` (S, n): closed-loop poles (NaN allowed). Rows are padded by repeating
     their last point, so all rows have the same length. The dead-time ripple is sampled
-    later, where it matters (:func:`_with_ripple`).
+    later, where it matters (:func:`peak`: :func:`_ripple_points`; :func:`bandwidth`:
+    :func:`_with_ripple`).
     """
     s_count = loop.samples
     ex = np.where(np.isfinite(extra) & (extra > 0), extra, np.nan)
