@@ -155,12 +155,16 @@ def test_lightly_damped_peak_matches_dense_mpmath_scan():
 
 
 def test_dead_time_batch_in_blocks_equals_each_loop_alone(monkeypatch):
-    """Loops with dead time are searched for peaks in row blocks (memory bound); a batch
-    split into blocks of 3, with one delay-free sample among samples with dead time, gives
-    each sample the values it has alone."""
+    """Loops with dead time are searched in row blocks (memory and cache bounds: the
+    bandwidth in DELAY_BLOCK rows, the peaks' grid pass in CACHE_POINTS points); a batch
+    split into blocks of a few rows (3 for the bandwidth, 600 points for the peaks), with
+    one delay-free sample among samples with dead time, gives each sample the values it has
+    alone."""
     from loopvet.analysis import evaluate as ev_mod
+    from loopvet.analysis import frequency as fq_mod
 
     monkeypatch.setattr(ev_mod, "DELAY_BLOCK", 3)
+    monkeypatch.setattr(fq_mod, "CACHE_POINTS", 3 * 200)
     n, d, k = random_batch(11, 7, 4)
     k = np.abs(k) * 0.2
     loop = batch_loop(n, d, k)

@@ -46,7 +46,8 @@ _SHA = re.compile(r"[0-9a-f]{64}")
 #: analysis options that shape the numbers (module, constant); part of the settings key
 ANALYSIS_OPTIONS: tuple[tuple[str, str], ...] = (
     ("design", "RANGE_SAMPLES"), ("design", "GAIN_SAMPLES"), ("design", "REFINE_EVALUATIONS"),
-    ("frequency", "PER_DECADE"), ("frequency", "REFINE_POINTS"), ("frequency", "REFINE_ROUNDS"),
+    ("frequency", "PER_DECADE"), ("frequency", "REFINE_POINTS"), ("frequency", "PEAK_ROUNDS"),
+    ("frequency", "PEAK_RTOL"), ("frequency", "PEAK_XTOL"),
     ("time", "SETTLE_TOL"),
 )
 

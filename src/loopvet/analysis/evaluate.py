@@ -146,28 +146,31 @@ def _stability(loop: Loop, poles: np.ndarray, goi: np.ndarray, margins: bool
     return stable, rise, fall
 
 
-#: samples per block of the peak search for loops with dead time, whose frequency sets
-#: hold a linear ripple grid of up to 40 000 points (memory bound)
+#: samples per block of the bandwidth search for loops with dead time, whose frequency sets
+#: hold a linear ripple grid of up to 40 000 points (memory bound; the peak search bounds
+#: its own blocks by points, see :func:`frequency.peak`)
 DELAY_BLOCK = 128
 
 
 def _peaks(loop: Loop, cross_w: np.ndarray, poles: np.ndarray, keys: list[str],
            out: dict[str, np.ndarray]) -> None:
-    """Peaks and bandwidth into ``out``, in row blocks for loops with dead time."""
+    """Peaks and bandwidth into ``out`` (the bandwidth in row blocks for loops with dead
+    time)."""
     s = loop.samples
-    step = DELAY_BLOCK if loop.has_delay else max(s, 1)
+    grid = fq.sample_grid(loop, cross_w, poles)
+    maps = {"sensitivity_peak": loop.sensitivity,
+            "complementary_sensitivity_peak": loop.complementary,
+            "control_sensitivity_peak": loop.control}
     for key in keys:
+        if key != "bandwidth":
+            out[key] = fq.peak(maps[key](), grid)
+            continue
+        step = DELAY_BLOCK if loop.has_delay else max(s, 1)
         out[key] = np.full(s, np.nan)
-    for start in range(0, s, step):
-        blk = slice(start, min(start + step, s))
-        sub = loop_rows(loop, blk) if step < s else loop
-        grid = fq.sample_grid(sub, cross_w[blk], poles[blk])
-        maps = {"sensitivity_peak": sub.sensitivity,
-                "complementary_sensitivity_peak": sub.complementary,
-                "control_sensitivity_peak": sub.control}
-        for key in keys:
-            out[key][blk] = fq.bandwidth(sub.reference(), grid) if key == "bandwidth" \
-                else fq.peak(maps[key](), grid)
+        for start in range(0, s, step):
+            blk = slice(start, min(start + step, s))
+            sub = loop_rows(loop, blk) if step < s else loop
+            out[key][blk] = fq.bandwidth(sub.reference(), grid[blk])
 
 
 def _num(col: np.ndarray) -> np.ndarray:
