@@ -12,7 +12,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from loopvet.analysis.gain import positive_roots, sign_changes
+from loopvet.analysis import gain
+from loopvet.analysis.gain import _positive_on_axis, positive_roots, sign_changes
 
 
 def _reference(c: np.ndarray) -> list[float]:
@@ -111,3 +112,45 @@ def test_random_polynomials_against_mpmath(pos, neg, pair, use_pair):
     distinct = srt.size < 2 or bool(np.all(srt[1:] > 1.01 * srt[:-1]))
     for w in want:
         assert got.size and np.min(np.abs(got - w)) <= (1e-9 if distinct else 1e-4) * w
+
+
+def test_loose_descartes_bound_certified_by_amgm_without_eigenvalues(monkeypatch):
+    # (x - 2)(x^2 - 2x + 10): V = 3, one positive root; the quotient x^2 - 2x + 10 is
+    # positive (AM-GM: 2^2 <= 0.9 * 4 * 1 * 10), so no eigenvalue problem is needed
+    def forbidden(a):
+        raise AssertionError("eigenvalue fallback used")
+
+    monkeypatch.setattr(gain.poly, "roots_ragged", forbidden)
+    c = _from_roots([2.0], [1 + 3j])
+    got = positive_roots(c[None, :])[0]
+    np.testing.assert_allclose(got, _reference(c), rtol=1e-13)
+
+
+def test_pair_close_to_the_axis_falls_back_to_eigenvalues(monkeypatch):
+    # (x - 2)(x^2 - 2x + 1.01): the pair 1 +- 0.1j is too close to the positive axis for
+    # the AM-GM test; the eigenvalue fallback must run and find the root 2
+    calls = []
+    real = gain.poly.roots_ragged
+
+    def spy(a):
+        calls.append(a.shape[0])
+        return real(a)
+
+    monkeypatch.setattr(gain.poly, "roots_ragged", spy)
+    c = _from_roots([2.0], [1 + 0.1j])
+    got = positive_roots(c[None, :])[0]
+    assert calls
+    assert np.min(np.abs(got - 2.0)) <= 1e-12
+
+
+@settings(max_examples=200, deadline=None)
+@given(coef=st.lists(st.one_of(st.just(0.0), st.floats(min_value=0.01, max_value=10.0),
+                               st.floats(min_value=-10.0, max_value=-0.01)),
+                     min_size=2, max_size=9))
+def test_amgm_positivity_is_sound(coef):
+    """Whenever the coefficient test says 'no positive root', mpmath (50 digits) finds none."""
+    c = np.array(coef)
+    if not np.any(c):
+        return
+    if bool(_positive_on_axis(c[None, :])[0]):
+        assert _reference(c) == []

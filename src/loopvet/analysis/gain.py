@@ -152,6 +152,24 @@ def sign_changes(c: np.ndarray) -> np.ndarray:
     return np.sum(filled[:, 1:] * filled[:, :-1] < 0, axis=1)
 
 
+def positive_root_bound(c: np.ndarray) -> np.ndarray:
+    """Per sample, an upper bound of the positive real roots of c (Kioustelidis' bound):
+    2 max |c_k/c_m|^(1/(m-k)) over the coefficients c_k of sign opposite to the leading
+    one c_m (m the effective degree); 0 when there is none (no positive root). Applied to
+    the reversed coefficients it bounds 1/x, i.e. gives a lower bound 1/B of the positive
+    roots. Never above Fujiwara's bound on all roots, often far below. Shape (S,)."""
+    c = np.asarray(c, dtype=np.float64)
+    samples, width = c.shape
+    deg = poly.effective_degree(c)
+    lead = c[np.arange(samples), np.maximum(deg, 0)]
+    power = deg[:, None] - np.arange(width)[None, :]
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        opposite = (power > 0) & (c * np.sign(lead)[:, None] < 0)
+        term = np.where(opposite, (np.abs(c) / np.abs(lead)[:, None])
+                        ** (1.0 / np.maximum(power, 1)), 0.0)
+    return 2.0 * term.max(axis=1, initial=0.0)
+
+
 #: grid density of :func:`positive_roots`, points per decade of the variable
 BRACKET_PER_DECADE = 8
 #: most grid points per sample in :func:`positive_roots` (wider spans fall back)
@@ -168,18 +186,24 @@ def positive_roots(q: np.ndarray) -> np.ndarray:
     Method
     ------
     Roots at 0 are divided out. Descartes' rule bounds the number of positive roots by V,
-    the coefficient sign changes. All positive roots lie between Fujiwara's lower and upper
-    root bounds; on a log grid of BRACKET_PER_DECADE points per decade between them
-    (slightly widened) the sign changes of q are counted. Each is a bracket holding an odd
-    number of roots, so when their number equals V every bracket holds exactly one simple
-    root and there are no others: the sample is certified and each root is polished by
-    Newton's method kept inside its bracket (bisection in log x when a step leaves it),
-    to a few ulps. V = 0 certifies "no positive root" without a grid. Samples that are not
-    certified (close or multiple roots, complex roots with positive real part, a grid value
-    that is exactly 0 or not finite) get the companion-matrix eigenvalues of
-    :func:`loopvet.lti.poly.roots_ragged` instead, with every root within 1e-3 relative of
-    the positive real axis kept (a double root then shows as a near-real pair); callers
-    verify candidates by Newton's method on their own equation either way.
+    the coefficient sign changes. All positive roots lie between Kioustelidis' lower and
+    upper bounds of the positive roots (:func:`positive_root_bound`); on a log grid of
+    BRACKET_PER_DECADE points per decade between them (slightly widened) the sign changes
+    of q are counted. Each is a bracket holding an odd number of roots, so when their
+    number equals V every bracket holds exactly one simple root and there are no others:
+    the sample is certified. Each bracketed root is polished by Newton's method kept inside
+    its bracket (bisection in log x when a step leaves it) until every step is below 1e-12
+    relative (the last step then leaves a few ulps). V = 0 certifies "no positive root"
+    without a grid. With fewer sign changes than V (complex roots with positive real part
+    make Descartes' bound loose, as for the gain-crossover polynomial), q divided by the
+    roots found is tested for positivity on x > 0 by the arithmetic-geometric mean
+    inequality on its coefficients (:func:`_positive_on_axis`); that too certifies the
+    sample. Samples that are not certified (close or multiple roots, a grid value that is
+    exactly 0 or not finite, a quotient the test cannot prove positive) get the
+    companion-matrix eigenvalues of :func:`loopvet.lti.poly.roots_ragged` instead, with
+    every root within 1e-3 relative of the positive real axis kept (a double root then
+    shows as a near-real pair); callers verify candidates by Newton's method on their own
+    equation either way.
 
     Accuracy: certified roots are exact to the evaluation accuracy of q near the root (a
     few ulps times the root's condition number). Cost: one Horner pass on the grid plus a
@@ -200,8 +224,8 @@ def positive_roots(q: np.ndarray) -> np.ndarray:
     if todo.size:
         cc = c[todo]
         with np.errstate(all="ignore"):
-            hi = 1.25 * root_bound(cc)
-            lo = 0.8 * root_lower_bound(cc)
+            hi = 1.25 * positive_root_bound(cc)
+            lo = 0.8 / positive_root_bound(cc[:, ::-1])
             span = np.log10(hi / lo)
         ok = np.isfinite(span) & (span > 0) & (lo > 0)
         decades = float(np.max(np.where(ok, span, 0.0), initial=0.0))
@@ -214,14 +238,20 @@ def positive_roots(q: np.ndarray) -> np.ndarray:
             val = poly.evaluate(cc, x)
         sg = np.sign(val)
         change = sg[:, 1:] * sg[:, :-1] < 0
-        ok &= np.all(np.isfinite(val) & (sg != 0), axis=1) & (change.sum(axis=1) == v[todo])
-        fallback[todo[~ok]] = True
+        ok &= np.all(np.isfinite(val) & (sg != 0), axis=1)
+        counted = ok & (change.sum(axis=1) == v[todo])
         rows, cols = np.nonzero(change & ok[:, None])
         if rows.size:
             roots = _newton_in_brackets(cc[rows], x[rows, cols], x[rows, cols + 1],
                                         val[rows, cols], val[rows, cols + 1])
             rank = np.arange(rows.size) - np.searchsorted(rows, rows)   # rows are sorted
             found[todo[rows], rank] = roots
+        # fewer sign changes than V: certified still when q divided by the roots found
+        # has no positive root at all (AM-GM on its coefficients, see _positive_on_axis)
+        extra = np.nonzero(ok & ~counted)[0]
+        if extra.size:
+            counted[extra] = _positive_on_axis(_deflate(cc[extra], found[todo[extra]]))
+        fallback[todo[~counted]] = True
     if fallback.any():
         sub = np.nonzero(fallback)[0]
         r = poly.roots_ragged(c[sub])
@@ -236,6 +266,56 @@ def positive_roots(q: np.ndarray) -> np.ndarray:
         found[sub, :cand.shape[1]] = cand
     keep_cols = int(np.max(np.sum(np.isfinite(found), axis=1), initial=0))
     return found[:, :keep_cols]
+
+
+def _deflate(c: np.ndarray, roots: np.ndarray) -> np.ndarray:
+    """Row r of ``c`` divided by (x - roots[r, j]) for its finite roots (synthetic
+    division; the remainders, zero up to rounding, are dropped), padded coefficients."""
+    out = c.copy()
+    for j in range(roots.shape[1]):
+        r = roots[:, j]
+        live = np.isfinite(r)
+        if not live.any():
+            continue
+        rr = np.where(live, r, 0.0)
+        quot = np.zeros_like(out)
+        for k in range(out.shape[1] - 1, 0, -1):       # b_(k-1) = c_k + r b_k
+            quot[:, k - 1] = out[:, k] + rr * quot[:, k]
+        out = np.where(live[:, None], quot, out)
+    return out
+
+
+#: share of the AM-GM bound a negative coefficient may use in :func:`_positive_on_axis`
+_AMGM_MARGIN = 0.9
+
+
+def _positive_on_axis(c: np.ndarray) -> np.ndarray:
+    """Per row, True when the polynomial is provably positive (or negative) for all x > 0:
+    after making the leading coefficient positive, the lowest one is positive, no two
+    negative coefficients are adjacent, and each negative c_k satisfies
+    c_k^2 <= 0.9 * 4 (c_(k-1)/n_(k-1)) (c_(k+1)/n_(k+1)), n_j the number of negative
+    neighbours of c_j: then c_(k-1) x^(k-1)/n_(k-1) + c_k x^k + c_(k+1) x^(k+1)/n_(k+1)
+    > 0 for every x > 0 (arithmetic-geometric mean inequality), and the sum of these
+    groups and of the remaining positive terms is positive. Sufficient, not necessary;
+    the margin 0.9 keeps the proof valid under coefficient rounding."""
+    deg = poly.effective_degree(c)
+    rows = np.arange(c.shape[0])
+    t = c * np.sign(c[rows, np.maximum(deg, 0)])[:, None]
+    cols = np.arange(c.shape[1])[None, :]
+    inside = cols <= deg[:, None]
+    neg = (t < 0) & inside
+    nb = np.zeros(t.shape)
+    nb[:, 1:] += neg[:, :-1]
+    nb[:, :-1] += neg[:, 1:]
+    share = np.where(nb > 0, t / np.where(nb > 0, nb, 1.0), 0.0)
+    left = np.zeros(t.shape)
+    right = np.zeros(t.shape)
+    left[:, 1:] = share[:, :-1]
+    right[:, :-1] = share[:, 1:]
+    with np.errstate(invalid="ignore", over="ignore"):
+        fine = ~neg | (t * t <= _AMGM_MARGIN * 4.0 * left * right)
+    adjacent = np.any(neg[:, 1:] & neg[:, :-1], axis=1)
+    return (deg >= 0) & (t[:, 0] > 0) & ~adjacent & np.all(fine, axis=1)
 
 
 def _newton_in_brackets(c: np.ndarray, a: np.ndarray, b: np.ndarray, fa: np.ndarray,
