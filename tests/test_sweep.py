@@ -122,3 +122,31 @@ def test_refine_finds_the_corner_between_samples():
     assert e.note.startswith("refined")
     assert e.value == pytest.approx(exact, rel=1e-4)
     assert res.sweep["worst"]["gain_margin_db"]["refined"] is True
+
+
+DEAD_TIME_SWEEP = """\
+parameters:
+  t: {nominal: 0.5, tolerance: 20%}
+plant: {transfer: "1/((s + 1)*(0.2*s + 1))", delay: t}
+controller: {pid: {kp: 0.8, ki: 0.5}}
+requirements:
+  stability: {}
+  gain_margin_db: {min: 3}
+sweep: {method: lhs, samples: 16, seed: 2}
+"""
+
+
+def test_undecided_crossing_search_is_reported(monkeypatch):
+    """Normally the dead-time crossing search decides every frequency interval and no
+    finding appears; allowed no bisection round it leaves its intervals open, and the nominal
+    analysis and the sweep must then say that stability is not proven there."""
+    from loopvet.analysis import delay
+
+    res = check_record(load_text(DEAD_TIME_SWEEP))
+    assert not [f for f in res.findings if f.kind == "crossing_search_undecided"]
+    monkeypatch.setattr(delay, "_ROUNDS", 0)
+    res = check_record(load_text(DEAD_TIME_SWEEP))
+    kinds = [f for f in res.findings if f.kind == "crossing_search_undecided"]
+    assert len(kinds) == 2                                   # nominal, and the sweep
+    assert any("of 17 sweep samples" in f.message for f in kinds)
+    assert all(f.severity == "warning" for f in kinds)

@@ -92,6 +92,16 @@ def gain_search_bound(bound: float) -> Finding:
                            "destabilising crossings occur")
 
 
+def crossing_search_undecided(intervals: int, samples: int = 1, of: int = 1) -> Finding:
+    where = "" if of == 1 else f" in {samples} of {of} sweep samples"
+    return Finding(kind="crossing_search_undecided", severity="warning",
+                   message=f"dead time: the crossing search left {intervals} frequency "
+                           f"interval(s) undecided{where} (still unresolved at 2^-40 of "
+                           "their frequency); a crossing of the imaginary axis there cannot "
+                           "be excluded, so stability and gain margins are not proven for "
+                           "them; check the loop (a root of N or D very near the axis?)")
+
+
 def response_truncated() -> Finding:
     return Finding(kind="response_truncated", severity="warning",
                    message="the step-response simulation reached its step budget before the "

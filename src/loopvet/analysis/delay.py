@@ -785,9 +785,11 @@ def delay_gain_intervals(n: np.ndarray, d: np.ndarray, delay: np.ndarray,
     iv_ends = np.cumsum(iv.sum(axis=1)).tolist()
     out = []
     start = iv_start = 0
-    for end, iv_end, kb in zip(ends, iv_ends, arr.search_bound.tolist(), strict=True):
+    for end, iv_end, kb, und in zip(ends, iv_ends, arr.search_bound.tolist(),
+                                    arr.undecided.tolist(), strict=True):
         crossings = tuple(map(Crossing, gains[start:end], freqs[start:end]))
         stable = tuple(zip(los[iv_start:iv_end], his[iv_start:iv_end], strict=True))
-        out.append(GainIntervals(crossings=crossings, stable=stable, search_bound=kb))
+        out.append(GainIntervals(crossings=crossings, stable=stable, search_bound=kb,
+                                 undecided=int(und)))
         start, iv_start = end, iv_end
     return out

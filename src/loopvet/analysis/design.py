@@ -129,6 +129,8 @@ def check_record(record: Record) -> DesignResult:
         found.append(fd.unstable(max(unstable_count, 1), ev.pade_order))
     if loop.has_delay and math.isfinite(gi.search_bound):
         found.append(fd.gain_search_bound(gi.search_bound))
+    if gi.undecided:
+        found.append(fd.crossing_search_undecided(gi.undecided))
     metrics: dict[str, Any] = {key: _value(ev.metrics[key][0]) for key in METRICS}
     if ev.reference is not None and bool(ev.reference.truncated[0]):
         found.append(fd.response_truncated())
@@ -379,6 +381,10 @@ def _sweep(record: Record, band: float, found: list[fd.Finding]
     count = plan.samples
     reqs = [r for r in record.requirements if r.sweep]
     ev = _evaluate_chunked(record, plan, band, {r.key for r in reqs})
+    open_samples = int(np.count_nonzero(ev.undecided))
+    if open_samples:
+        found.append(fd.crossing_search_undecided(int(ev.undecided.sum()), open_samples,
+                                                  count))
     fails = np.zeros(count, dtype=bool)
     entries: list[Entry] = []
     worst: dict[str, Any] = {}
@@ -420,6 +426,7 @@ SWEEP_CHUNK = 2048
 class _SweepValues:
     metrics: dict[str, np.ndarray]
     stable: np.ndarray
+    undecided: np.ndarray
 
 
 def _evaluate_chunked(record: Record, plan: Any, band: float, keys: set[str]
@@ -428,6 +435,7 @@ def _evaluate_chunked(record: Record, plan: Any, band: float, keys: set[str]
     computing only the metrics in ``keys`` (the swept requirements)."""
     metrics: dict[str, list[np.ndarray]] = {}
     stable: list[np.ndarray] = []
+    undecided: list[np.ndarray] = []
     for start in range(0, plan.samples, SWEEP_CHUNK):
         sl = slice(start, min(start + SWEEP_CHUNK, plan.samples))
         gains = plan.gains[sl]
@@ -440,8 +448,10 @@ def _evaluate_chunked(record: Record, plan: Any, band: float, keys: set[str]
         for key, arr in ev.metrics.items():
             metrics.setdefault(key, []).append(arr)
         stable.append(ev.stable)
+        undecided.append(ev.undecided if ev.undecided is not None
+                         else np.zeros(count, dtype=np.int64))
     return _SweepValues(metrics={k: np.concatenate(v) for k, v in metrics.items()},
-                        stable=np.concatenate(stable))
+                        stable=np.concatenate(stable), undecided=np.concatenate(undecided))
 
 
 #: evaluations allowed to the local search of each swept requirement (refine: true)

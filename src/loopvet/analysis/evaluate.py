@@ -41,7 +41,9 @@ class Evaluation:
 
     ``crossover_w``/``crossover_lag``: gain crossovers and their lags (S, M), NaN-padded;
     ``intervals``: per-sample stable gain intervals when they were computed (dead time, or
-    given by the caller), else None (delay-free batches use the crossing arrays directly).
+    given by the caller), else None (delay-free batches use the crossing arrays directly);
+    ``undecided``: per sample, the frequency intervals the dead-time crossing search left
+    undecided (0 normally, and for delay-free samples).
     """
 
     metrics: dict[str, np.ndarray]
@@ -53,6 +55,7 @@ class Evaluation:
     pade_order: int | None
     reference: StepResponse | None = None
     load: StepResponse | None = None
+    undecided: np.ndarray | None = None
 
     def crossovers(self, i: int) -> list[fq.Crossover]:
         """Sample ``i``'s gain crossovers with their lags, by frequency."""
@@ -81,6 +84,7 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
     if intervals is not None:
         stable = np.array([iv.interval_containing(float(k)) is not None
                            for iv, k in zip(intervals, loop.gain, strict=True)], dtype=bool)
+        undecided = np.array([iv.undecided for iv in intervals], dtype=np.int64)
         if want & set(GAIN_KEYS):
             gm = np.array([gain_margins(iv, float(k)) for iv, k in
                            zip(intervals, loop.gain, strict=True)], dtype=object).reshape(s, 2)
@@ -88,7 +92,8 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
             out["gain_reduction_margin_db"] = _num(gm[:, 1])
     else:
         goi = gains_of_interest if gains_of_interest is not None else loop.gain[:, None]
-        stable, rise, fall = _stability(loop, ps.poles, goi, bool(want & set(GAIN_KEYS)))
+        stable, rise, fall, undecided = _stability(loop, ps.poles, goi,
+                                                   bool(want & set(GAIN_KEYS)))
         if want & set(GAIN_KEYS):
             out["gain_margin_db"], out["gain_reduction_margin_db"] = rise, fall
     out |= pole_metrics(ps.poles)
@@ -120,18 +125,19 @@ def evaluate(loop: Loop, *, pade: int | None, band: float = 0.02,
                 out[key] = np.full(s, np.nan)
     return Evaluation(metrics=out, stable=stable, intervals=intervals, crossover_w=cross_w,
                       crossover_lag=cross_lag, poles=ps.poles, pade_order=ps.pade_order,
-                      reference=ref, load=load)
+                      reference=ref, load=load, undecided=undecided)
 
 
 def _stability(loop: Loop, poles: np.ndarray, goi: np.ndarray, margins: bool
-               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(stable, gain_margin_db, gain_reduction_margin_db) per sample without building
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """(stable, gain_margin_db, gain_reduction_margin_db, undecided) per sample without building
     per-sample interval objects: delay-free samples from the closed-loop poles and the
     nearest crossing gains, samples with dead time from the batched exact analysis."""
     s = loop.samples
     stable = np.zeros(s, dtype=bool)
     rise = np.full(s, np.nan)
     fall = np.full(s, np.nan)
+    undecided = np.zeros(s, dtype=np.int64)
     dead = loop.delay > 0
     free = np.nonzero(~dead)[0]
     if free.size:
@@ -143,7 +149,8 @@ def _stability(loop: Loop, poles: np.ndarray, goi: np.ndarray, margins: bool
     if idx.size:
         arrays = delay_crossing_arrays(loop.n[idx], loop.d[idx], loop.delay[idx], goi[idx])
         stable[idx], rise[idx], fall[idx] = delay_stability_margins(arrays, loop.gain[idx])
-    return stable, rise, fall
+        undecided[idx] = arrays.undecided
+    return stable, rise, fall, undecided
 
 
 #: samples per block of the bandwidth search for loops with dead time, whose frequency sets

@@ -51,6 +51,7 @@ class GainIntervals:
     stable: tuple[tuple[float, float], ...]
     fixed_axis_pole: bool = False    # a common root of D and N on the axis: never stable
     search_bound: float = np.inf     # |K| up to which crossings were searched (dead time)
+    undecided: int = 0               # dead time: frequency intervals the search left open
 
     def interval_containing(self, k: float) -> tuple[float, float] | None:
         return next(((lo, hi) for lo, hi in self.stable if lo < k < hi), None)
