@@ -26,7 +26,10 @@ def _reference(c: np.ndarray) -> list[float]:
     if len(desc) < 2:
         return []
     with mpmath.workdps(50):
-        r = mpmath.polyroots(desc, maxsteps=400, extraprec=400)
+        try:
+            r = mpmath.polyroots(desc, maxsteps=400, extraprec=400)
+        except mpmath.libmp.libhyper.NoConvergence:       # clusters converge slowly
+            r = mpmath.polyroots(desc, maxsteps=5000, extraprec=2000)
     return sorted(float(mpmath.re(x)) for x in r
                   if abs(mpmath.im(x)) <= mpmath.mpf(10) ** -30 * abs(x) and mpmath.re(x) > 0)
 

@@ -649,6 +649,7 @@ def test_block_length_only_regroups_the_recursion(monkeypatch, block):
     dead times (100, 3 and 5 steps) regroup the same sums: each matches the step-by-step
     oracle as the default does."""
     monkeypatch.setattr("loopvet.analysis.time.BLOCK", block)
+    monkeypatch.setattr("loopvet.analysis.time.SMALL_GROUP", 0)     # exactly BLOCK steps
     for case in ("neutral-m=100-tau-off-grid", "neutral-m=3", "m=5-tau-off-grid",
                  "sixth-order-tiny-tau"):
         (p, a, b), tau, delay, _, _ = ORACLE_LOOPS[case]
@@ -657,6 +658,25 @@ def test_block_length_only_regroups_the_recursion(monkeypatch, block):
         want = stepwise_oracle(p, a, b, tau, delay, r.t[0])
         np.testing.assert_allclose(r.y[0], want, rtol=0, atol=1e-12 * np.abs(want).max(),
                                    err_msg=case)
+
+
+@pytest.mark.parametrize("case,horizon,factor", [
+    ("neutral-m=100-tau-off-grid", 60.0, 2),        # 3 600 steps
+    ("fopdt-pi", 60.0, 2),                          # 3 480 steps
+    ("neutral-m=3", 5.0, 4),                        # 26 667 steps
+    ("m=5-tau-off-grid", 5.0, 4),                   # 22 500 steps
+])
+def test_long_blocks_of_a_single_sample_match_the_oracle(case, horizon, factor):
+    """One sample on a long grid is simulated in blocks of 2 or 4 times BLOCK steps (dead
+    times of 100, 5 and 3 steps, shorter and longer than a block); it still reproduces the
+    step-by-step oracle."""
+    (p, a, b), tau, delay, _, _ = ORACLE_LOOPS[case]
+    mp, _ = _oracle_case(case)
+    r = step_response(mp, horizon=np.array([horizon]), points=400)
+    assert tm._block_length(1, r.t.shape[1] - 1) == factor * tm.BLOCK
+    want = stepwise_oracle(p, a, b, tau, delay, r.t[0])
+    np.testing.assert_allclose(r.y[0], want, rtol=0, atol=1e-12 * np.abs(want).max(),
+                               err_msg=case)
 
 
 def _signal_step(p, a, b, t: np.ndarray, tau: float = 0.0) -> np.ndarray:
