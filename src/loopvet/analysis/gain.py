@@ -158,7 +158,7 @@ def positive_root_bound(c: np.ndarray) -> np.ndarray:
     2 max |c_k/c_m|^(1/(m-k)) over the coefficients c_k of sign opposite to the leading
     one c_m (m the effective degree); 0 when there is none (no positive root). Applied to
     the reversed coefficients it bounds 1/x, i.e. gives a lower bound 1/B of the positive
-    roots. Never above Fujiwara's bound on all roots, often far below. Shape (S,)."""
+    roots. Never above :func:`root_bound` (all roots), often far below. Shape (S,)."""
     c = np.asarray(c, dtype=np.float64)
     samples, width = c.shape
     deg = poly.effective_degree(c)
