@@ -13,7 +13,12 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from loopvet.analysis import gain
-from loopvet.analysis.gain import _positive_on_axis, positive_roots, sign_changes
+from loopvet.analysis.gain import (
+    _positive_on_axis,
+    positive_root_bound,
+    positive_roots,
+    sign_changes,
+)
 
 
 def _reference(c: np.ndarray) -> list[float]:
@@ -157,3 +162,19 @@ def test_amgm_positivity_is_sound(coef):
         return
     if bool(_positive_on_axis(c[None, :])[0]):
         assert _reference(c) == []
+
+
+@settings(max_examples=100, deadline=None)
+@given(roots=st.lists(st.floats(min_value=-3.0, max_value=3.0), min_size=1, max_size=7),
+       signs=st.lists(st.booleans(), min_size=7, max_size=7))
+def test_positive_root_bounds_enclose_the_roots(roots, signs):
+    """Kioustelidis' bound (from the coefficients) against the positive roots found by
+    mpmath: every positive root x satisfies 1/B(reversed) <= x <= B."""
+    r = [(1 if sg else -1) * 10.0 ** e for e, sg in zip(roots, signs, strict=False)]
+    c = np.poly(r)[::-1].copy()
+    pos = _reference(c)
+    if not pos:
+        return
+    hi = positive_root_bound(c[None, :])[0]
+    lo = 1.0 / positive_root_bound(c[None, ::-1])[0]
+    assert lo * (1 - 1e-9) <= min(pos) and max(pos) <= hi * (1 + 1e-9)
