@@ -203,7 +203,6 @@ def _interp(t: np.ndarray, tt: np.ndarray, yy: np.ndarray, final: float) -> np.n
 def envelope(record: Record, plan: Any, responses: dict[str, Any]) -> dict[str, Any] | None:
     """Lowest and highest step and load responses over evenly spread sweep samples, on the
     nominal responses' time points (unstable samples are left out and counted)."""
-    from ..lti.loop import ClosedLoopMap
     from .evaluate import evaluate
     from .time import step_response
 
@@ -221,8 +220,7 @@ def envelope(record: Record, plan: Any, responses: dict[str, Any]) -> dict[str, 
         if kind not in responses:
             continue
         t = np.asarray(responses[kind]["t"], dtype=float)
-        sub = ClosedLoopMap(p=m.p[stable], tau=m.tau[stable], a=m.a[stable], b=m.b[stable],
-                            delay=m.delay[stable])
+        sub = m.rows(stable)
         r = step_response(sub, horizon=np.array([t[-1]]) if t[-1] > 0 else None, points=300,
                           max_steps=ENVELOPE_STEPS)
         ys = np.array([_interp(t, r.t[i], r.y[i], float(r.final[i]))

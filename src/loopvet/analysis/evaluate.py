@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..lti import poly
-from ..lti.loop import ClosedLoopMap, Loop
+from ..lti.loop import Loop
 from ..lti.loop import rows as loop_rows
 from ..metrics import METRICS
 from . import frequency as fq
@@ -190,18 +190,14 @@ def _scatter(values: np.ndarray, stable: np.ndarray, s: int) -> np.ndarray:
     return out
 
 
-def _subset(m: ClosedLoopMap, idx: np.ndarray) -> ClosedLoopMap:
-    return ClosedLoopMap(p=m.p[idx], tau=m.tau[idx], a=m.a[idx], b=m.b[idx], delay=m.delay[idx])
-
-
 def _responses(loop: Loop, stable: np.ndarray) -> tuple[StepResponse | None,
                                                         StepResponse | None]:
     """Step responses of the stable samples only (an unstable loop is never simulated)."""
     idx = np.nonzero(stable)[0]
     if idx.size == 0:
         return None, None
-    ref = step_response(_subset(loop.reference(), idx))
-    load = step_response(_subset(loop.load(), idx))
+    ref = step_response(loop.reference().rows(idx))
+    load = step_response(loop.load().rows(idx))
     return ref, load
 
 

@@ -370,14 +370,6 @@ def _tail(m: ClosedLoopMap, start: np.ndarray) -> np.ndarray:
     return w
 
 
-def _rows(m: ClosedLoopMap, idx: np.ndarray | slice) -> ClosedLoopMap:
-    """The rows ``idx`` of ``m``; P stays the same array as A or B when it was (so
-    :func:`_squared` evaluates it once)."""
-    a, b = m.a[idx], m.b[idx]
-    p = a if m.p is m.a else b if m.p is m.b else m.p[idx]
-    return ClosedLoopMap(p=p, tau=m.tau[idx], a=a, b=b, delay=m.delay[idx])
-
-
 def _grid_2d(grid: np.ndarray, samples: int) -> np.ndarray:
     g = np.asarray(grid, dtype=np.float64)
     return np.broadcast_to(g, (samples, g.shape[-1])) if g.ndim == 1 else g
@@ -403,9 +395,9 @@ def _squared(m: ClosedLoopMap, w: np.ndarray, envelope: bool = False
     :meth:`ClosedLoopMap.magnitude`, squared."""
     with np.errstate(all="ignore"):
         x = w * w
-        ar, ai = _on_axis(m.a, w, x)
-        br, bi = _on_axis(m.b, w, x)
-        pr, pi = (ar, ai) if m.p is m.a else (br, bi) if m.p is m.b else _on_axis(m.p, w, x)
+        ar, ai = poly.on_axis(m.a, w, x)
+        br, bi = poly.on_axis(m.b, w, x)
+        pr, pi = (ar, ai) if m.p is m.a else (br, bi) if m.p is m.b else poly.on_axis(m.p, w, x)
         pp = pr * pr + pi * pi
         env = None
         if envelope:
@@ -441,24 +433,6 @@ def _cos_sin(phi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return (1.0 - t2) * d, 2.0 * t * d
 
 
-def _on_axis(c: np.ndarray, w: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`loopvet.lti.poly.on_axis` for a 2-D ``w`` (S, points) with x = w^2 given (the
-    same operations in the same order, without its per-call set-up)."""
-    def horner(h: np.ndarray) -> np.ndarray:
-        h = h * np.where(np.arange(h.shape[1]) % 2 == 0, 1.0, -1.0)
-        if h.shape[1] == 1:
-            return np.broadcast_to(h, x.shape)
-        out = h[:, -1:] * x + h[:, -2:-1]
-        for k in range(h.shape[1] - 3, -1, -1):
-            out *= x
-            out += h[:, k:k + 1]
-        return out
-
-    re = horner(c[:, 0::2])
-    im = horner(c[:, 1::2]) * w if c.shape[1] > 1 else np.zeros(x.shape)
-    return re, im
-
-
 def _no_nan(v: np.ndarray) -> np.ndarray:
     """``v`` with NaN replaced by -inf (a copy only when there is a NaN)."""
     return np.where(np.isnan(v), -np.inf, v) if np.isnan(v.max(initial=0.0)) else v
@@ -479,7 +453,7 @@ def peak(m: ClosedLoopMap, grid: np.ndarray) -> np.ndarray:
     found: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
     for blk in _blocks(s_count, g2.shape[1], CACHE_POINTS):
         rows = np.arange(s_count)[blk]
-        sub = m if blk.stop - blk.start == s_count else _rows(m, blk)
+        sub = m if blk.stop - blk.start == s_count else m.rows(blk)
         g = g2[blk]
         v, env = _squared(sub, g, envelope=delay)
         v = _no_nan(v)
@@ -489,17 +463,17 @@ def peak(m: ClosedLoopMap, grid: np.ndarray) -> np.ndarray:
             continue
         reach = _ripple_reach(sub, g, env, np.sqrt(best[blk]))
         for part in _ripple_parts(sub, reach, g.shape[1]):
-            lin = _ripple_points(_rows(sub, part), reach[part])
+            lin = _ripple_points(sub.rows(part), reach[part])
             if lin is None:
                 found.append(_local_maxima(g[part], v[part], best[blk][part], rows[part]))
                 continue
-            vl = _no_nan(_squared(_rows(sub, part), lin)[0])
+            vl = _no_nan(_squared(sub.rows(part), lin)[0])
             gm, vm = _merge_values(g[part], v[part], lin, vl)
             best[rows[part]] = np.maximum(best[rows[part]], vl.max(axis=1))
             found.append(_local_maxima(gm, vm, best[rows[part]], rows[part]))
     rows_c = np.concatenate([f[0] for f in found])
     if rows_c.size:
-        refined = _refine_max(_rows(m, rows_c), np.concatenate([f[1] for f in found]),
+        refined = _refine_max(m.rows(rows_c), np.concatenate([f[1] for f in found]),
                               np.concatenate([f[2] for f in found]))
         np.maximum.at(best, rows_c, refined)
     top = g2[:, -1:]
@@ -621,7 +595,7 @@ def _refine_max(m: ClosedLoopMap, x: np.ndarray, f: np.ndarray) -> np.ndarray:
             move, excess = move[keep], excess[keep]
             closed = closed[keep]
             rows = np.arange(live.size)[:, None]
-            sub = _rows(m, live)
+            sub = m.rows(live)
             xa, xc, xb = pts[:, 0], pts[:, 1], pts[:, 2]
         h = np.maximum(_STEP_OF_MOVE * np.abs(move), _STEP_OF_WIDTH * (xb - xa))
         u = (xc + move)[:, None] + h[:, None] * stencil
@@ -657,7 +631,7 @@ def bandwidth(m: ClosedLoopMap, grid: np.ndarray) -> np.ndarray:
         g2 = _with_ripple(m, g2, g2[np.arange(s_count), j])
     first = np.full(s_count, -1)
     for blk in _blocks(s_count, g2.shape[1], CACHE_POINTS):
-        below = _mag(_rows(m, np.arange(s_count)[blk]), g2[blk]) <= level[blk, None]
+        below = _mag(m.rows(np.arange(s_count)[blk]), g2[blk]) <= level[blk, None]
         first[blk] = np.where(below.any(axis=1), np.argmax(below, axis=1), -1)
     out = np.where(first < 0, np.inf, np.nan)
     out = np.where(first == 0, g2[:, 0], out)
@@ -665,7 +639,7 @@ def bandwidth(m: ClosedLoopMap, grid: np.ndarray) -> np.ndarray:
     if rows.size:
         j = first[rows]
         a, b = np.log(g2[rows, j - 1]), np.log(g2[rows, j])
-        sub, lv = _rows(m, rows), level[rows]
+        sub, lv = m.rows(rows), level[rows]
         u = np.linspace(0.0, 1.0, REFINE_POINTS)[None, :]
         r = np.arange(rows.size)
         for _ in range(13):

@@ -68,6 +68,13 @@ class ClosedLoopMap:
         gap = np.hypot(ar, ai) - np.hypot(br, bi)
         return np.where(gap > 0, np.hypot(pr, pi) / np.where(gap > 0, gap, 1.0), np.inf)
 
+    def rows(self, idx: np.ndarray | slice) -> ClosedLoopMap:
+        """The samples ``idx``; P stays the same array as A or B when it was (so an
+        evaluation of P, A and B can share it)."""
+        a, b = self.a[idx], self.b[idx]
+        p = a if self.p is self.a else b if self.p is self.b else self.p[idx]
+        return ClosedLoopMap(p=p, tau=self.tau[idx], a=a, b=b, delay=self.delay[idx])
+
     def loop_ratio(self, w: np.ndarray) -> np.ndarray:
         """|B/A| at s = jw (the loop gain magnitude for these maps)."""
         ar, ai = poly.on_axis(self.a, w)

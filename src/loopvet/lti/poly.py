@@ -141,18 +141,20 @@ def evaluate(a: NDArray, x: NDArray) -> NDArray:
 _ALTERNATING = np.where(np.arange(64) % 2 == 0, 1.0, -1.0)
 
 
-def on_axis(a: NDArray, w: NDArray) -> tuple[NDArray, NDArray]:
+def on_axis(a: NDArray, w: NDArray, x: NDArray | None = None) -> tuple[NDArray, NDArray]:
     """Real and imaginary parts of each sample's polynomial at s = jw for real ``w``.
 
     ``w`` has shape (points,) or (samples, points). With x = w^2,
     ``a(jw) = E(x) + j w O(x)``, ``E_m = (-1)^m a_2m``, ``O_m = (-1)^m a_(2m+1)``: two real
     Horner schemes of half the degree, about four times cheaper than complex arithmetic and
     with the same rounding behaviour. Returns two real arrays of shape (samples, points).
+    ``x``: w^2 when the caller has it already (several polynomials on one grid).
     """
     ww = np.asarray(w, dtype=np.float64)
     if ww.ndim == 1:
         ww = ww[None, :]
-    x = ww * ww
+    if x is None:
+        x = ww * ww
     shape = np.broadcast_shapes((a.shape[0], 1), ww.shape)
 
     def horner(c: NDArray) -> NDArray:
